@@ -1,0 +1,33 @@
+# The two commands: `make demo` runs the main job, `make test` runs the test suite.
+# Both create .venv on first use. The CPU build of torch is installed explicitly first,
+# so that no bare `torch` requirement is ever resolved to a multi-GB CUDA build.
+PYTHON ?= python3
+VENV := .venv
+PY := $(VENV)/bin/python
+TORCH_SPEC ?= torch==2.13.0
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test bench venv clean
+
+$(STAMP): pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+	$(PY) -m pip install --quiet "$(TORCH_SPEC)"
+	$(PY) -m pip install --quiet -e ".[test,tutorials]"
+	touch $(STAMP)
+
+venv: $(STAMP)
+
+demo: $(STAMP)
+	$(PY) tutorials/00_operators.py
+
+test: $(STAMP)
+	$(PY) -m pytest -q
+
+bench: $(STAMP)
+	$(PY) bench/kernels.py
+	$(PY) bench/layers.py
+	$(PY) bench/scattering.py
+
+clean:
+	rm -rf $(VENV) build src/*.egg-info .pytest_cache .hypothesis

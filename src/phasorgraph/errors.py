@@ -1,0 +1,12 @@
+"""The one exception family of phasorgraph."""
+
+__all__ = ["GraphInputError"]
+
+
+class GraphInputError(ValueError):
+    """Bad input to a phasorgraph function or layer.
+
+    Every message names the argument, says what was wrong and what is accepted, e.g.
+    ``"source holds node 12 but num_nodes is 10"``. It subclasses :class:`ValueError`, so
+    code that already catches ``ValueError`` keeps working.
+    """

@@ -1,0 +1,293 @@
+"""DirectedGraph: validated, canonical directed weighted edges, and adapters in and out."""
+
+from __future__ import annotations
+
+import numbers
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+import torch
+
+from .errors import GraphInputError
+
+__all__ = ["DirectedGraph"]
+
+
+def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
+    """Turn a 1-D array-like of node ids into an int64 CPU tensor, rejecting non-integers."""
+    if isinstance(value, torch.Tensor):
+        t = value.detach()
+        if t.is_complex() or t.dtype == torch.bool:
+            raise GraphInputError(f"{name} must hold integer node ids; got a tensor of dtype {t.dtype}")
+        if t.is_floating_point():
+            if not bool(torch.all(torch.isfinite(t))) or not bool(torch.all(t == torch.round(t))):
+                raise GraphInputError(f"{name} must hold integer node ids; got non-integer values of dtype {t.dtype}")
+        t = t.to(device="cpu", dtype=torch.int64)
+    else:
+        try:
+            arr = np.asarray(value)
+        except Exception as exc:  # pragma: no cover - numpy raises many kinds
+            raise GraphInputError(f"{name} must be a 1-D array of integer node ids; got {type(value).__name__}") from exc
+        if arr.dtype == object or arr.dtype.kind not in "iuf" and arr.size > 0:
+            raise GraphInputError(f"{name} must hold integer node ids; got an array of dtype {arr.dtype}")
+        if arr.dtype.kind == "f":
+            if not np.all(np.isfinite(arr)) or not np.all(arr == np.round(arr)):
+                raise GraphInputError(f"{name} must hold integer node ids; got non-integer values of dtype {arr.dtype}")
+        t = torch.as_tensor(arr.astype(np.int64, copy=False))
+    if t.dim() != 1:
+        raise GraphInputError(f"{name} must be 1-D; got shape {tuple(t.shape)}")
+    return t.contiguous()
+
+
+def _as_weight_tensor(value: Any, num_edges: int) -> torch.Tensor:
+    if value is None:
+        return torch.ones(num_edges, dtype=torch.float64)
+    if isinstance(value, torch.Tensor):
+        if value.is_complex():
+            raise GraphInputError(f"weight must be real; got a tensor of dtype {value.dtype}")
+        w = value.detach().to(device="cpu", dtype=torch.float64)
+    else:
+        arr = np.asarray(value)
+        if arr.dtype == object or (arr.dtype.kind not in "iufb" and arr.size > 0):
+            raise GraphInputError(f"weight must hold real numbers; got an array of dtype {arr.dtype}")
+        w = torch.as_tensor(arr.astype(np.float64, copy=False))
+    if w.dim() == 0:
+        w = w.expand(num_edges)
+    if w.dim() != 1 or w.numel() != num_edges:
+        raise GraphInputError(
+            f"weight must have one entry per edge ({num_edges}); got shape {tuple(w.shape)}"
+        )
+    if not bool(torch.all(torch.isfinite(w))):
+        bad = int(torch.nonzero(~torch.isfinite(w))[0])
+        raise GraphInputError(f"weight must be finite; edge {bad} has weight {float(w[bad])}")
+    return w.contiguous()
+
+
+class DirectedGraph:
+    r"""A directed weighted graph on nodes ``0 .. num_nodes - 1``, stored as canonical edges.
+
+    The weighted adjacency is :math:`A[u, v] = w` for an edge :math:`u \to v`. On construction
+    duplicate edges are summed, zero-weight edges are dropped, self-loops are kept, and the
+    edges are sorted by (source, target), so two graphs with the same adjacency are stored
+    identically. The object is immutable: every helper returns a new graph.
+
+    Args:
+        source: int64 tensor (E,) of edge tails.
+        target: int64 tensor (E,) of edge heads.
+        weight: float tensor (E,) or None (all ones). Any finite real; operators that need
+            non-negative weights check that themselves.
+        num_nodes: number of nodes N (>= every index + 1). Nodes without edges are isolated.
+
+    Attributes:
+        source, target (Tensor): int64 (E,), sorted by (source, target).
+        weight (Tensor): float64 (E,), non-zero.
+        num_nodes (int), num_edges (int).
+
+    Example:
+        >>> g = DirectedGraph.from_edges([[0, 1, 1], [1, 2, 2]], weight=[1.0, 2.0, 3.0])
+        >>> g.num_nodes, g.num_edges, g.weight.tolist()
+        (3, 2, [1.0, 5.0])
+    """
+
+    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache")
+
+    def __init__(self, source: Any, target: Any, weight: Any = None, num_nodes: int | None = None):
+        src = _as_index_tensor("source", source)
+        dst = _as_index_tensor("target", target)
+        if src.numel() != dst.numel():
+            raise GraphInputError(
+                f"source and target must have the same length; got {src.numel()} and {dst.numel()}"
+            )
+        w = _as_weight_tensor(weight, src.numel())
+        if src.numel() and (int(src.min()) < 0 or int(dst.min()) < 0):
+            which = "source" if int(src.min()) < 0 else "target"
+            raise GraphInputError(f"{which} holds a negative node id; node ids must be >= 0")
+        largest = int(torch.maximum(src.max(), dst.max())) if src.numel() else -1
+        if num_nodes is None:
+            num_nodes = largest + 1
+        else:
+            if isinstance(num_nodes, bool) or not isinstance(num_nodes, numbers.Integral):
+                raise GraphInputError(f"num_nodes must be a non-negative integer; got {num_nodes!r}")
+            num_nodes = int(num_nodes)
+            if num_nodes < 0:
+                raise GraphInputError(f"num_nodes must be a non-negative integer; got {num_nodes}")
+            if largest >= num_nodes:
+                which = "source" if src.numel() and int(src.max()) == largest else "target"
+                raise GraphInputError(f"{which} holds node {largest} but num_nodes is {num_nodes}")
+        self._num_nodes = num_nodes
+        self._source, self._target, self._weight = self._canonical(src, dst, w, num_nodes)
+        self._cache: dict = {}
+
+    @staticmethod
+    def _canonical(src, dst, w, n):
+        """Sum duplicates, drop zeros, sort by (source, target); vectorized over edges."""
+        if src.numel() == 0:
+            return src, dst, w
+        key = src * max(n, 1) + dst
+        uniq, inverse = torch.unique(key, sorted=True, return_inverse=True)
+        summed = torch.zeros(uniq.numel(), dtype=torch.float64).index_add_(0, inverse, w)
+        keep = summed != 0
+        uniq, summed = uniq[keep], summed[keep]
+        return (uniq // max(n, 1)).contiguous(), (uniq % max(n, 1)).contiguous(), summed.contiguous()
+
+    # ------------------------------------------------------------------ properties
+    @property
+    def source(self) -> torch.Tensor:
+        return self._source
+
+    @property
+    def target(self) -> torch.Tensor:
+        return self._target
+
+    @property
+    def weight(self) -> torch.Tensor:
+        return self._weight
+
+    @property
+    def num_nodes(self) -> int:
+        return self._num_nodes
+
+    @property
+    def num_edges(self) -> int:
+        return int(self._source.numel())
+
+    def __repr__(self) -> str:
+        return f"DirectedGraph(num_nodes={self.num_nodes}, num_edges={self.num_edges})"
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, DirectedGraph):
+            return NotImplemented
+        return (
+            self.num_nodes == other.num_nodes
+            and torch.equal(self.source, other.source)
+            and torch.equal(self.target, other.target)
+            and torch.equal(self.weight, other.weight)
+        )
+
+    __hash__ = object.__hash__
+
+    def __getstate__(self):
+        return {"source": self._source, "target": self._target, "weight": self._weight, "num_nodes": self._num_nodes}
+
+    def __setstate__(self, state):
+        self._source, self._target = state["source"], state["target"]
+        self._weight, self._num_nodes = state["weight"], state["num_nodes"]
+        self._cache = {}
+
+    # ------------------------------------------------------------------ constructors
+    @classmethod
+    def from_edges(cls, edges_or_source: Any, target: Any = None, weight: Any = None,
+                   num_nodes: int | None = None) -> "DirectedGraph":
+        """Build from a (2, E) array/tensor of (source, target) rows, or two 1-D arrays.
+
+        Example:
+            >>> DirectedGraph.from_edges([0, 1], [1, 2], num_nodes=4)
+            DirectedGraph(num_nodes=4, num_edges=2)
+        """
+        if target is None:
+            edges = edges_or_source
+            if isinstance(edges, torch.Tensor):
+                shape = tuple(edges.shape)
+            else:
+                edges = np.asarray(edges)
+                shape = edges.shape
+            if len(shape) != 2 or shape[0] != 2:
+                hint = " (did you pass (E, 2)? transpose it)" if len(shape) == 2 and shape[1] == 2 else ""
+                raise GraphInputError(
+                    f"edges_or_source must have shape (2, E) when target is not given; got {shape}{hint}"
+                )
+            return cls(edges[0], edges[1], weight, num_nodes)
+        return cls(edges_or_source, target, weight, num_nodes)
+
+    @classmethod
+    def from_scipy(cls, matrix: Any) -> "DirectedGraph":
+        """Build from a square scipy sparse matrix (any format) or a dense 2-D array.
+
+        Entry (u, v) is an edge u -> v of weight ``matrix[u, v]``.
+        """
+        if sp.issparse(matrix):
+            coo = sp.coo_matrix(matrix)
+        else:
+            arr = np.asarray(matrix)
+            if arr.ndim != 2:
+                raise GraphInputError(f"matrix must be 2-D (square); got shape {arr.shape}")
+            coo = sp.coo_matrix(arr)
+        if coo.shape[0] != coo.shape[1]:
+            raise GraphInputError(f"matrix must be square; got shape {coo.shape}")
+        if np.iscomplexobj(coo.data):
+            raise GraphInputError(f"matrix must be real; got dtype {coo.data.dtype}")
+        return cls(coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data, coo.shape[0])
+
+    @classmethod
+    def from_networkx(cls, G: Any, weight: str | None = "weight") -> "DirectedGraph":
+        """Build from a networkx graph; nodes are numbered in ``G.nodes`` order.
+
+        A ``Graph`` becomes both directions of each edge; a ``DiGraph`` is taken as is; in a
+        ``MultiDiGraph`` (or ``MultiGraph``) parallel edges are summed. Missing weights are 1.
+        """
+        import networkx as nx
+
+        if not isinstance(G, nx.Graph):
+            raise GraphInputError(f"G must be a networkx graph; got {type(G).__name__}")
+        index = {node: i for i, node in enumerate(G.nodes)}
+        rows, cols, vals = [], [], []
+        for u, v, data in G.edges(data=True):
+            w = 1.0 if weight is None else data.get(weight, 1.0)
+            rows.append(index[u]); cols.append(index[v]); vals.append(w)
+            if not G.is_directed() and u != v:
+                rows.append(index[v]); cols.append(index[u]); vals.append(w)
+        try:
+            vals_arr = np.asarray(vals, dtype=np.float64)
+        except (TypeError, ValueError) as exc:
+            raise GraphInputError(f"edge attribute {weight!r} must be a real number on every edge") from exc
+        return cls(np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64), vals_arr, len(index))
+
+    # ------------------------------------------------------------------ adapters out
+    def to_scipy(self, format: str = "csr") -> sp.spmatrix:
+        """The weighted adjacency A (N, N) as a scipy sparse matrix, A[u, v] = w(u -> v)."""
+        coo = sp.coo_matrix(
+            (self._weight.numpy(), (self._source.numpy(), self._target.numpy())),
+            shape=(self.num_nodes, self.num_nodes),
+        )
+        return coo.asformat(format)
+
+    def to_networkx(self):
+        """A networkx ``DiGraph`` with nodes 0..N-1 and the ``weight`` edge attribute."""
+        import networkx as nx
+
+        G = nx.DiGraph()
+        G.add_nodes_from(range(self.num_nodes))
+        G.add_weighted_edges_from(zip(self._source.tolist(), self._target.tolist(), self._weight.tolist()))
+        return G
+
+    # ------------------------------------------------------------------ helpers
+    def reverse(self) -> "DirectedGraph":
+        """Every edge u -> v becomes v -> u (adjacency A^T)."""
+        return DirectedGraph(self._target, self._source, self._weight, self.num_nodes)
+
+    def symmetrized(self) -> "DirectedGraph":
+        """The graph of As = (A + A^T) / 2: both directions, each with half the summed weight."""
+        src = torch.cat([self._source, self._target])
+        dst = torch.cat([self._target, self._source])
+        return DirectedGraph(src, dst, torch.cat([self._weight, self._weight]) / 2, self.num_nodes)
+
+    def permute(self, perm: Any) -> "DirectedGraph":
+        """Relabel nodes: node ``perm[i]`` of this graph becomes node ``i`` of the result.
+
+        So ``A_new = A[perm][:, perm]``, and features follow with ``x[perm]``.
+        """
+        p = _as_index_tensor("perm", perm)
+        n = self.num_nodes
+        if p.numel() != n or (n and not torch.equal(torch.sort(p).values, torch.arange(n))):
+            raise GraphInputError(f"perm must be a permutation of 0..{n - 1} (length {n}); got length {p.numel()}")
+        inverse = torch.empty_like(p)
+        inverse[p] = torch.arange(n)
+        return DirectedGraph(inverse[self._source], inverse[self._target], self._weight, n)
+
+    def subgraph_edges(self, keep: torch.Tensor) -> "DirectedGraph":
+        """The graph with only the edges where the boolean mask ``keep`` (E,) is true."""
+        keep = torch.as_tensor(keep, dtype=torch.bool)
+        if keep.shape != (self.num_edges,):
+            raise GraphInputError(f"keep must be a boolean mask of shape ({self.num_edges},); got {tuple(keep.shape)}")
+        return DirectedGraph(self._source[keep], self._target[keep], self._weight[keep], self.num_nodes)

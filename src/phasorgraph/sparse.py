@@ -1,0 +1,435 @@
+r"""SparseOperator (a torch CSR matrix and what is known about it) and its products.
+
+This module is plain sparse linear algebra: it knows nothing about graphs. The products are
+custom autograd functions whose backward never asks autograd to transpose a CSR matrix:
+
+* :func:`hermitian_matmul` - ``op @ x`` for Hermitian ``op``; backward ``op @ grad``.
+* :func:`general_matmul` - ``op @ x`` for any ``op``; backward ``op^H @ grad`` with ``op^H``
+  built once and cached on the operator.
+* :func:`values_matmul` - ``A(values) @ x`` on a fixed CSR pattern, differentiable in the
+  values (a chunked sampled dense-dense product) and in ``x``.
+
+A real operator applied to complex features never casts the operator to complex: the features
+are viewed as real with ``torch.view_as_real`` and multiplied as one (N, 2F) real product.
+"""
+
+from __future__ import annotations
+
+import warnings
+from typing import Optional, Sequence
+
+import torch
+from torch.autograd.function import once_differentiable
+
+from .errors import GraphInputError
+
+__all__ = [
+    "SparseOperator",
+    "csr_matrix",
+    "hermitian_matmul",
+    "general_matmul",
+    "values_matmul",
+]
+
+_REAL_OF = {torch.complex64: torch.float32, torch.complex128: torch.float64}
+_COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
+_SUPPORTED = (torch.float32, torch.float64, torch.complex64, torch.complex128)
+
+#: elements of the (chunk, F) temporaries in the sampled dense-dense product
+_SDDMM_CHUNK_ELEMENTS = 1 << 22
+
+
+def csr_matrix(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, size: Sequence[int]) -> torch.Tensor:
+    """A torch sparse CSR tensor from its parts, without the beta-state warning."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        return torch.sparse_csr_tensor(crow, col, values, tuple(size), check_invariants=False)
+
+
+def _real_precision(dtype: torch.dtype) -> torch.dtype:
+    return _REAL_OF.get(dtype, dtype)
+
+
+class SparseOperator:
+    r"""A square sparse linear operator: a torch CSR matrix and what is known about it.
+
+    The operator is ``matrix + U @ V^H`` where the optional low-rank part ``(U, V)`` (N, r)
+    carries dense rank-r terms (the teleport of a PageRank walk, say) without ever forming an
+    N x N tensor.
+
+    Args:
+        matrix: torch sparse CSR tensor (N, N), float32/float64/complex64/complex128.
+        hermitian: whether the whole operator equals its conjugate transpose (enables the
+            cheap-backward kernel :func:`hermitian_matmul`).
+        spectrum: a known interval ``(low, high)`` holding the (real parts of the) eigenvalues,
+            or None.
+        kind: short text naming the construction, e.g. ``"normalized_laplacian"``.
+        low_rank: optional pair ``(U, V)`` of dense (N, r) tensors of the matrix's dtype.
+        similar: optional pair ``(base, scale)``: this operator equals
+            ``diag(scale) @ base @ diag(1 / scale)`` with ``base`` a Hermitian
+            :class:`SparseOperator`. Powers can then run on ``base`` with the Hermitian kernel.
+
+    Attributes:
+        lmax (float or None): largest eigenvalue, filled in once by
+            :func:`phasorgraph.spectral.largest_eigenvalue` and kept here.
+
+    Example:
+        >>> import torch
+        >>> m = torch.eye(3).to_sparse_csr()
+        >>> op = SparseOperator(m, hermitian=True, spectrum=(1.0, 1.0), kind="identity")
+        >>> (op @ torch.ones(3, 2)).tolist()
+        [[1.0, 1.0], [1.0, 1.0], [1.0, 1.0]]
+    """
+
+    def __init__(self, matrix: torch.Tensor, *, hermitian: bool, spectrum: Optional[tuple] = None,
+                 kind: str = "operator", low_rank: Optional[tuple] = None,
+                 similar: Optional[tuple] = None, lmax: Optional[float] = None):
+        if not isinstance(matrix, torch.Tensor) or matrix.layout != torch.sparse_csr:
+            raise GraphInputError(
+                f"matrix must be a torch sparse CSR tensor; got {getattr(matrix, 'layout', type(matrix).__name__)}"
+            )
+        if matrix.dim() != 2 or matrix.shape[0] != matrix.shape[1]:
+            raise GraphInputError(f"matrix must be square (N, N); got shape {tuple(matrix.shape)}")
+        if matrix.dtype not in _SUPPORTED:
+            raise GraphInputError(f"matrix dtype must be one of {_SUPPORTED}; got {matrix.dtype}")
+        if low_rank is not None:
+            U, V = low_rank
+            n = matrix.shape[0]
+            if U.dim() != 2 or U.shape != V.shape or U.shape[0] != n:
+                raise GraphInputError(f"low_rank must be two (N, r) tensors with N = {n}; got {tuple(U.shape)} and {tuple(V.shape)}")
+            low_rank = (U.to(matrix.dtype), V.to(matrix.dtype))
+        self.matrix = matrix
+        self.hermitian = bool(hermitian)
+        self.spectrum = None if spectrum is None else (float(spectrum[0]), float(spectrum[1]))
+        self.kind = kind
+        self.low_rank = low_rank
+        self.similar = similar
+        self.lmax = lmax
+        self._adjoint: Optional[SparseOperator] = None
+
+    # ------------------------------------------------------------------ facts
+    @property
+    def shape(self) -> torch.Size:
+        return self.matrix.shape
+
+    @property
+    def num_rows(self) -> int:
+        return int(self.matrix.shape[0])
+
+    @property
+    def dtype(self) -> torch.dtype:
+        return self.matrix.dtype
+
+    @property
+    def device(self) -> torch.device:
+        return self.matrix.device
+
+    @property
+    def is_complex(self) -> bool:
+        return self.matrix.dtype.is_complex
+
+    @property
+    def nnz(self) -> int:
+        return int(self.matrix.values().numel())
+
+    def __repr__(self) -> str:
+        extra = f", low_rank={self.low_rank[0].shape[1]}" if self.low_rank is not None else ""
+        return (f"SparseOperator(kind={self.kind!r}, shape={tuple(self.shape)}, nnz={self.nnz}, "
+                f"dtype={self.dtype}, hermitian={self.hermitian}, spectrum={self.spectrum}{extra})")
+
+    def __getstate__(self):
+        m = self.matrix
+        state = dict(self.__dict__)
+        state["matrix"] = (m.crow_indices(), m.col_indices(), m.values(), tuple(m.shape))
+        state["_adjoint"] = None
+        return state
+
+    def __setstate__(self, state):
+        crow, col, val, size = state["matrix"]
+        state["matrix"] = csr_matrix(crow, col, val, size)
+        self.__dict__.update(state)
+
+    # ------------------------------------------------------------------ products
+    def matmul(self, x: torch.Tensor) -> torch.Tensor:
+        """``op @ x`` for x of shape (N, ...), differentiable in x.
+
+        Hermitian operators use :func:`hermitian_matmul`; others :func:`general_matmul`.
+        """
+        return hermitian_matmul(self, x) if self.hermitian else general_matmul(self, x)
+
+    __matmul__ = matmul
+
+    def transpose_conj(self) -> "SparseOperator":
+        """The conjugate transpose ``op^H``, built once and cached (itself when Hermitian)."""
+        if self.hermitian:
+            return self
+        if self._adjoint is None:
+            t = self.matrix.to_sparse_coo().coalesce()
+            idx, val = t.indices(), t.values()
+            if val.is_complex():
+                val = val.conj().resolve_conj()
+            n = self.num_rows
+            # sort by (new row, new col) = (old col, old row)
+            order = torch.argsort(idx[1] * max(n, 1) + idx[0])
+            rows, cols, vals = idx[1][order], idx[0][order], val[order]
+            crow = torch.zeros(n + 1, dtype=torch.int64, device=rows.device)
+            crow[1:] = torch.cumsum(torch.bincount(rows, minlength=n), 0)
+            low_rank = None if self.low_rank is None else (self.low_rank[1], self.low_rank[0])
+            spectrum = self.spectrum
+            adj = SparseOperator(csr_matrix(crow, cols, vals, (n, n)), hermitian=False, spectrum=spectrum,
+                                 kind=self.kind + "^H", low_rank=low_rank, lmax=self.lmax)
+            adj._adjoint = self
+            self._adjoint = adj
+        return self._adjoint
+
+    # ------------------------------------------------------------------ conversions
+    def to_dense(self) -> torch.Tensor:
+        """The dense (N, N) matrix. Small graphs only: this is the one N x N tensor in the class."""
+        dense = self.matrix.to_dense()
+        if self.low_rank is not None:
+            U, V = self.low_rank
+            dense = dense + U @ V.conj().T
+        return dense
+
+    def to(self, dtype: Optional[torch.dtype] = None, device=None) -> "SparseOperator":
+        """A copy with another dtype and/or device. Casting complex to real is refused."""
+        dtype = self.dtype if dtype is None else dtype
+        if dtype not in _SUPPORTED:
+            raise GraphInputError(f"dtype must be one of {_SUPPORTED}; got {dtype}")
+        if self.is_complex and not dtype.is_complex:
+            raise GraphInputError(
+                f"dtype {dtype} would drop the imaginary part of a complex operator ({self.dtype}); "
+                f"use {_COMPLEX_OF[dtype]} instead"
+            )
+        m = self.matrix
+        device = m.device if device is None else torch.device(device)
+        matrix = csr_matrix(m.crow_indices().to(device), m.col_indices().to(device),
+                            m.values().to(device=device, dtype=dtype), m.shape)
+        low_rank = None
+        if self.low_rank is not None:
+            low_rank = tuple(t.to(device=device, dtype=dtype) for t in self.low_rank)
+        similar = None
+        if self.similar is not None:
+            base, scale = self.similar
+            similar = (base.to(dtype, device), scale.to(device=device, dtype=_real_precision(dtype)))
+        return SparseOperator(matrix, hermitian=self.hermitian, spectrum=self.spectrum, kind=self.kind,
+                              low_rank=low_rank, similar=similar, lmax=self.lmax)
+
+
+# ---------------------------------------------------------------------- the raw product
+def _check_features(op: SparseOperator, x: torch.Tensor) -> None:
+    if not isinstance(x, torch.Tensor):
+        raise GraphInputError(f"x must be a torch.Tensor; got {type(x).__name__}")
+    if x.dim() < 1 or x.shape[0] != op.num_rows:
+        raise GraphInputError(
+            f"x must have num_nodes = {op.num_rows} rows (shape (N, ...)); got shape {tuple(x.shape)}"
+        )
+    if x.dtype not in _SUPPORTED:
+        raise GraphInputError(f"x dtype must be one of {_SUPPORTED}; got {x.dtype}")
+    if _real_precision(x.dtype) != _real_precision(op.dtype):
+        raise GraphInputError(
+            f"x has dtype {x.dtype} but the operator is {op.dtype}; use the same precision "
+            f"(op.to(...) or x.to(...))"
+        )
+    if x.device != op.device:
+        raise GraphInputError(f"x is on {x.device} but the operator is on {op.device}; move one of them")
+
+
+def _spmm(matrix: torch.Tensor, low_rank, x2d: torch.Tensor) -> torch.Tensor:
+    """matrix @ x2d (+ U (V^H x2d)); x2d (N, F) with a dtype the matrix can multiply."""
+    out = torch.sparse.mm(matrix, x2d) if x2d.shape[1] else x2d.new_zeros((matrix.shape[0], 0))
+    if low_rank is not None:
+        U, V = low_rank
+        out = out + U @ (V.conj().T @ x2d)
+    return out
+
+
+def _apply(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
+    """op @ x for x (N, ...), without autograd bookkeeping; dtypes already checked."""
+    n = op.num_rows
+    tail = x.shape[1:]
+    if op.is_complex:
+        xc = x if x.is_complex() else x.to(op.dtype)
+        out = _spmm(op.matrix, op.low_rank, xc.reshape(n, -1))
+        return out.reshape((n,) + tuple(tail))
+    if x.is_complex():
+        # a real operator on complex features: one real product of width 2F
+        xr = torch.view_as_real(x.resolve_conj()).reshape(n, -1)
+        out = _spmm(op.matrix, op.low_rank, xr)
+        return torch.view_as_complex(out.reshape((n,) + tuple(tail) + (2,)).contiguous())
+    return _spmm(op.matrix, op.low_rank, x.contiguous().reshape(n, -1)).reshape((n,) + tuple(tail))
+
+
+def _match_input(grad: torch.Tensor, x_dtype: torch.dtype) -> torch.Tensor:
+    if grad.is_complex() and not x_dtype.is_complex:
+        return grad.real.contiguous()
+    return grad
+
+
+class _HermitianMatmul(torch.autograd.Function):
+    @staticmethod
+    def forward(ctx, x, op):
+        ctx.op = op
+        ctx.x_dtype = x.dtype
+        return _apply(op, x)
+
+    @staticmethod
+    @once_differentiable
+    def backward(ctx, grad):
+        # y = op x with op^H = op, so dL/dx = op^H grad = op grad: no transpose is built.
+        return _match_input(_apply(ctx.op, grad.contiguous()), ctx.x_dtype), None
+
+
+class _GeneralMatmul(torch.autograd.Function):
+    @staticmethod
+    def forward(ctx, x, op):
+        ctx.op = op
+        ctx.x_dtype = x.dtype
+        return _apply(op, x)
+
+    @staticmethod
+    @once_differentiable
+    def backward(ctx, grad):
+        return _match_input(_apply(ctx.op.transpose_conj(), grad.contiguous()), ctx.x_dtype), None
+
+
+def hermitian_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
+    r"""``op @ x`` for a Hermitian (or real symmetric) operator, with backward ``op @ grad``.
+
+    Because :math:`op^H = op`, the gradient :math:`\partial L / \partial x = op^H g = op\, g`
+    is one more forward product: no transposed CSR matrix is ever built.
+
+    Args:
+        op: a :class:`SparseOperator` with ``hermitian=True``.
+        x: (N, ...) real or complex tensor of the operator's precision. Real x with a complex
+            operator gives a complex result; complex x with a real operator uses one real
+            product of width 2F.
+
+    Returns:
+        (N, ...) tensor: complex if either factor is complex.
+
+    Example:
+        >>> import torch
+        >>> op = SparseOperator(torch.eye(2).to_sparse_csr(), hermitian=True)
+        >>> hermitian_matmul(op, torch.ones(2, 3)).shape
+        torch.Size([2, 3])
+    """
+    if not isinstance(op, SparseOperator):
+        raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
+    if not op.hermitian:
+        raise GraphInputError(f"op must be Hermitian for hermitian_matmul; got kind {op.kind!r} "
+                              f"(use general_matmul or op @ x)")
+    _check_features(op, x)
+    return _HermitianMatmul.apply(x, op)
+
+
+def general_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
+    """``op @ x`` for any operator; backward ``op^H @ grad`` with ``op^H`` cached on ``op``."""
+    if not isinstance(op, SparseOperator):
+        raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
+    _check_features(op, x)
+    return _GeneralMatmul.apply(x, op)
+
+
+# ---------------------------------------------------------------------- values product
+def _row_indices(crow: torch.Tensor) -> torch.Tensor:
+    n = crow.numel() - 1
+    return torch.repeat_interleave(torch.arange(n, device=crow.device), crow.diff())
+
+
+def _sampled_products(grad2d: torch.Tensor, x2d: torch.Tensor, rows: torch.Tensor, cols: torch.Tensor) -> torch.Tensor:
+    """g_k = sum_f grad[rows_k, f] * conj(x[cols_k, f]), in chunks of bounded memory."""
+    nnz = rows.numel()
+    width = max(int(grad2d.shape[1]), 1)
+    step = max(1, _SDDMM_CHUNK_ELEMENTS // width)
+    dtype = torch.promote_types(grad2d.dtype, x2d.dtype)
+    out = torch.empty(nnz, dtype=dtype, device=grad2d.device)
+    xc = x2d.conj() if x2d.is_complex() else x2d
+    for start in range(0, nnz, step):
+        stop = min(nnz, start + step)
+        g = grad2d.index_select(0, rows[start:stop])
+        v = xc.index_select(0, cols[start:stop])
+        out[start:stop] = (g * v).sum(dim=1)
+    return out
+
+
+class _ValuesMatmul(torch.autograd.Function):
+    @staticmethod
+    def forward(ctx, values, x, crow, col, rows, adjoint_perm, hermitian):
+        n = crow.numel() - 1
+        op = SparseOperator(csr_matrix(crow, col, values, (n, n)), hermitian=hermitian, kind="values")
+        ctx.save_for_backward(values, x, crow, col, rows, adjoint_perm)
+        ctx.hermitian = hermitian
+        return _apply(op, x)
+
+    @staticmethod
+    @once_differentiable
+    def backward(ctx, grad):
+        values, x, crow, col, rows, adjoint_perm = ctx.saved_tensors
+        n = crow.numel() - 1
+        grad = grad.contiguous()
+        grad_values = grad_x = None
+        if ctx.needs_input_grad[0]:
+            g2 = grad.reshape(n, -1)
+            x2 = x.reshape(n, -1)
+            gv = _sampled_products(g2, x2, rows, col)
+            if not values.is_complex():
+                gv = gv.real if gv.is_complex() else gv
+            grad_values = gv.to(values.dtype)
+        if ctx.needs_input_grad[1]:
+            if ctx.hermitian:
+                op = SparseOperator(csr_matrix(crow, col, values, (n, n)), hermitian=True, kind="values")
+            else:
+                # op^H on the transposed pattern: values permuted once per call (O(nnz))
+                vals = values[adjoint_perm]
+                vals = vals.conj() if vals.is_complex() else vals
+                t_rows = col[adjoint_perm]
+                t_cols = rows[adjoint_perm]
+                t_crow = torch.zeros(n + 1, dtype=torch.int64, device=crow.device)
+                t_crow[1:] = torch.cumsum(torch.bincount(t_rows, minlength=n), 0)
+                op = SparseOperator(csr_matrix(t_crow, t_cols, vals, (n, n)), hermitian=False, kind="values^H")
+            grad_x = _match_input(_apply(op, grad), x.dtype)
+        return grad_values, grad_x, None, None, None, None, None
+
+
+def values_matmul(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, x: torch.Tensor, *,
+                  hermitian: bool = False, rows: Optional[torch.Tensor] = None,
+                  adjoint_perm: Optional[torch.Tensor] = None) -> torch.Tensor:
+    r"""``A @ x`` with ``A`` the CSR matrix ``(crow, col, values)``, differentiable in ``values``.
+
+    The gradient of value k is :math:`\sum_f g[r_k, f]\, \overline{x[c_k, f]}` (a sampled
+    dense-dense product, computed in chunks so extra memory stays O(nnz + N F)); the
+    gradient of x is :math:`A^H g`, taken as :math:`A g` when ``hermitian=True``.
+
+    Args:
+        crow, col: int64 CSR index tensors of a fixed pattern (N + 1,), (nnz,).
+        values: (nnz,) real or complex tensor; may require grad.
+        x: (N, ...) features of the same precision.
+        hermitian: whether the values make A Hermitian (skips building A^H in backward).
+        rows: optional (nnz,) row index of each value (computed from crow if absent; pass it
+            to save the work when calling repeatedly).
+        adjoint_perm: optional (nnz,) permutation taking the values to the CSR order of A^T
+            (needed only when not Hermitian; computed if absent).
+
+    Returns:
+        (N, ...) tensor.
+
+    Example:
+        >>> import torch
+        >>> crow, col = torch.tensor([0, 1, 2]), torch.tensor([1, 0])
+        >>> v = torch.tensor([2.0, 3.0], requires_grad=True)
+        >>> values_matmul(crow, col, v, torch.ones(2, 1)).sum().backward(); v.grad.tolist()
+        [1.0, 1.0]
+    """
+    n = crow.numel() - 1
+    if values.dim() != 1 or values.numel() != col.numel():
+        raise GraphInputError(f"values must be 1-D with one entry per column index ({col.numel()}); got shape {tuple(values.shape)}")
+    if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n:
+        raise GraphInputError(f"x must have N = {n} rows; got shape {tuple(getattr(x, 'shape', ()))}")
+    if _real_precision(x.dtype) != _real_precision(values.dtype):
+        raise GraphInputError(f"x has dtype {x.dtype} but values are {values.dtype}; use the same precision")
+    if rows is None:
+        rows = _row_indices(crow)
+    if adjoint_perm is None:
+        adjoint_perm = torch.argsort(col * max(n, 1) + rows) if not hermitian else rows.new_empty(0)
+    return _ValuesMatmul.apply(values, x, crow, col, rows, adjoint_perm, bool(hermitian))

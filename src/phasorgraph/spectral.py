@@ -1,0 +1,214 @@
+r"""Spectral tools: largest eigenvalue, Fourier basis, frame bounds, Dirichlet energy.
+
+:func:`fourier_basis` and :func:`frame_bounds` are small-graph utilities: they build dense
+N x N matrices and refuse graphs above ``max_nodes``.
+"""
+
+from __future__ import annotations
+
+from typing import Callable, Sequence
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+import torch
+
+from .errors import GraphInputError
+from .sparse import SparseOperator, _apply
+
+__all__ = ["largest_eigenvalue", "fourier_basis", "frame_bounds", "dirichlet_energy", "DENSE_NODE_LIMIT"]
+
+#: the largest graph the dense small-graph utilities accept by default
+DENSE_NODE_LIMIT = 4096
+
+
+def _check_operator(op) -> SparseOperator:
+    if not isinstance(op, SparseOperator):
+        raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
+    return op
+
+
+def _scipy_linear_operator(op: SparseOperator) -> spla.LinearOperator:
+    n = op.num_rows
+    dtype = np.complex128 if op.is_complex else np.float64
+    op64 = op.to(torch.complex128 if op.is_complex else torch.float64, device="cpu")
+
+    def mv(v):
+        t = torch.as_tensor(np.asarray(v).reshape(n, -1).astype(dtype, copy=False))
+        return _apply(op64, t).numpy()
+
+    return spla.LinearOperator((n, n), matvec=mv, matmat=mv, dtype=dtype)
+
+
+def _power_iteration(op: SparseOperator, iterations: int = 200, seed: int = 0) -> float:
+    n = op.num_rows
+    gen = torch.Generator().manual_seed(seed)
+    dtype = torch.complex128 if op.is_complex else torch.float64
+    op64 = op.to(dtype, device="cpu")
+    v = torch.randn(n, 1, generator=gen, dtype=torch.float64).to(dtype)
+    v = v / v.norm()
+    lam = 0.0
+    for _ in range(iterations):
+        w = _apply(op64, v)
+        norm = float(w.norm())
+        if norm == 0.0:
+            return 0.0
+        lam = norm
+        v = w / norm
+    return lam
+
+
+def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool = False) -> float:
+    r"""The largest eigenvalue of a Hermitian operator (largest modulus otherwise), cached on ``op``.
+
+    Hermitian operators use Lanczos (``scipy.sparse.linalg.eigsh``, ``which="LA"``); if it does
+    not converge, or the operator is not Hermitian, power iteration estimates the spectral
+    radius. The value is stored in ``op.lmax`` and returned from there on later calls.
+
+    Args:
+        op: a SparseOperator.
+        tol: Lanczos tolerance.
+        refresh: recompute even if ``op.lmax`` is set.
+
+    Example:
+        >>> from phasorgraph import DirectedGraph, normalized_laplacian
+        >>> g = DirectedGraph.from_edges([[0], [1]])
+        >>> round(largest_eigenvalue(normalized_laplacian(g)), 6)
+        2.0
+    """
+    op = _check_operator(op)
+    if op.lmax is not None and not refresh:
+        return op.lmax
+    n = op.num_rows
+    if n == 0:
+        op.lmax = 0.0
+        return 0.0
+    value = None
+    if op.hermitian:
+        if n <= 64:
+            dense = op.to(torch.complex128 if op.is_complex else torch.float64, device="cpu").to_dense().numpy()
+            value = float(np.linalg.eigvalsh(dense)[-1])
+        else:
+            try:
+                vals = spla.eigsh(_scipy_linear_operator(op), k=1, which="LA", tol=tol,
+                                  return_eigenvectors=False, maxiter=max(1000, 20 * n),
+                                  v0=np.ones(n))
+                value = float(np.real(vals[0]))
+            except (spla.ArpackNoConvergence, spla.ArpackError):
+                value = None
+    if value is None:
+        value = _power_iteration(op)
+    op.lmax = value
+    return value
+
+
+def _dense(op: SparseOperator, max_nodes: int, name: str = "op") -> np.ndarray:
+    if op.num_rows > max_nodes:
+        raise GraphInputError(
+            f"{name} has {op.num_rows} nodes but this small-graph utility builds a dense N x N "
+            f"matrix and accepts at most max_nodes = {max_nodes}; use largest_eigenvalue or a "
+            f"Chebyshev filter on large graphs"
+        )
+    dtype = torch.complex128 if op.is_complex else torch.float64
+    return op.to(dtype, device="cpu").to_dense().numpy()
+
+
+def fourier_basis(op: SparseOperator, *, max_nodes: int = DENSE_NODE_LIMIT):
+    r"""Eigenvalues (ascending) and orthonormal eigenvectors of a Hermitian operator (dense eigh).
+
+    Small graphs only: the basis is a dense N x N matrix. Graphs above ``max_nodes`` are
+    refused with a clear error.
+
+    Returns:
+        (eigenvalues (N,) float64 tensor, eigenvectors (N, N) float64 or complex128 tensor);
+        ``op = U diag(lam) U^H``.
+
+    Example:
+        >>> from phasorgraph import DirectedGraph, normalized_laplacian
+        >>> lam, U = fourier_basis(normalized_laplacian(DirectedGraph.from_edges([[0], [1]])))
+        >>> [round(v, 6) for v in lam.tolist()]
+        [0.0, 2.0]
+    """
+    op = _check_operator(op)
+    if not op.hermitian:
+        raise GraphInputError(f"op must be Hermitian for fourier_basis; got kind {op.kind!r}")
+    lam, U = np.linalg.eigh(_dense(op, max_nodes))
+    return torch.as_tensor(lam), torch.as_tensor(U)
+
+
+def frame_bounds(bank: Sequence | Callable, op: SparseOperator | None = None, *,
+                 max_nodes: int = DENSE_NODE_LIMIT, weight: torch.Tensor | None = None):
+    r"""Tight frame bounds (A, B) of a filter bank: :math:`A\|x\|^2 \le \sum_j \|F_j x\|^2 \le B\|x\|^2`.
+
+    Args:
+        bank: a sequence of dense (N, N) matrices / SparseOperators F_j, or a callable that maps
+            a dense (N, N) identity to a tensor (N, J, N) of the bank applied to it (the output
+            of a wavelet layer applied to the identity, say).
+        op: unused unless ``bank`` is a callable, when its size fixes N.
+        weight: optional (N,) positive vector w: bounds in the norm :math:`\|w \odot x\|`, i.e. of
+            :math:`\sum_j F_j^H F_j` relative to :math:`W^2`: eigenvalues of
+            :math:`W^{-1} (\sum_j F_j^H F_j) W^{-1}`.
+
+    Returns:
+        (A, B) floats: the smallest and largest eigenvalue of :math:`\sum_j F_j^H F_j`.
+
+    Small graphs only (dense).
+    """
+    if callable(bank) and not isinstance(bank, (list, tuple)):
+        if op is None:
+            raise GraphInputError("op is needed to size the identity when bank is a callable")
+        n = op.num_rows
+        if n > max_nodes:
+            raise GraphInputError(f"op has {n} nodes; frame_bounds accepts at most max_nodes = {max_nodes}")
+        dtype = torch.complex128 if op.is_complex else torch.float64
+        eye = torch.eye(n, dtype=dtype)
+        out = bank(eye)  # (N, J, N): column i is the bank applied to e_i
+        mats = [out[:, j, :].detach().numpy() for j in range(out.shape[1])]
+    else:
+        mats = []
+        for F in bank:
+            if isinstance(F, SparseOperator):
+                mats.append(_dense(F, max_nodes, "bank entry"))
+            else:
+                mats.append(np.asarray(torch.as_tensor(F).detach()))
+    if not mats:
+        raise GraphInputError("bank must hold at least one filter")
+    n = mats[0].shape[0]
+    gram = sum(F.conj().T @ F for F in mats)
+    if weight is not None:
+        w = np.asarray(torch.as_tensor(weight, dtype=torch.float64))
+        if w.shape != (n,) or np.any(w <= 0):
+            raise GraphInputError(f"weight must be a positive vector of shape ({n},)")
+        gram = gram / w[:, None] / w[None, :]
+    lam = np.linalg.eigvalsh((gram + gram.conj().T) / 2)
+    return float(lam[0]), float(lam[-1])
+
+
+def dirichlet_energy(x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
+    r"""Dirichlet energy :math:`E(x) = \mathrm{Re}\,\mathrm{tr}(x^H L x)` of features x under a Laplacian L.
+
+    With the normalized Laplacian this is
+    :math:`\tfrac12 \sum_{u,v} A_s[u,v] \, \| x_u/\sqrt{d_u} - x_v/\sqrt{d_v} \|^2`; it falls to 0
+    as repeated low-pass filtering makes features constant on each component (over-smoothing).
+
+    Args:
+        x: (N, F) or (N,) real or complex features.
+        op: a Hermitian positive semidefinite SparseOperator (a Laplacian).
+
+    Returns:
+        0-dim real tensor, differentiable in x.
+
+    Example:
+        >>> import torch
+        >>> from phasorgraph import DirectedGraph, normalized_laplacian
+        >>> op = normalized_laplacian(DirectedGraph.from_edges([[0], [1]]))
+        >>> float(dirichlet_energy(torch.tensor([[1.0], [-1.0]]), op))
+        4.0
+    """
+    op = _check_operator(op)
+    if not op.hermitian:
+        raise GraphInputError(f"op must be a Hermitian Laplacian for dirichlet_energy; got kind {op.kind!r}")
+    Lx = op.matmul(x)
+    prod = x.conj() * Lx if x.is_complex() or Lx.is_complex() else x * Lx
+    total = prod.sum()
+    return total.real if total.is_complex() else total
