@@ -285,6 +285,38 @@ class DirectedGraph:
         inverse[p] = torch.arange(n)
         return DirectedGraph(inverse[self._source], inverse[self._target], self._weight, n)
 
+    def locality_order(self) -> tuple["DirectedGraph", torch.Tensor]:
+        """Reorder nodes for memory locality by reverse Cuthill-McKee on the pattern of A + A^T.
+
+        The permutation comes from ``scipy.sparse.csgraph.reverse_cuthill_mckee`` applied to
+        the symmetrized sparsity pattern; it usually shrinks the bandwidth of every operator
+        built from the graph, so sparse products touch nearby rows. It follows the convention of
+        :meth:`permute`: node ``perm[i]`` of this graph becomes node ``i`` of the result, and
+        features follow with ``x[perm]`` (undo with ``y_new[torch.argsort(perm)]``).
+
+        Returns:
+            ``(permuted_graph, perm)`` with ``perm`` an int64 tensor (N,).
+
+        Example:
+            >>> g = DirectedGraph.from_edges([[0, 3], [3, 1]], num_nodes=4)
+            >>> h, perm = g.locality_order()
+            >>> h == g.permute(perm), sorted(perm.tolist())
+            (True, [0, 1, 2, 3])
+        """
+        from scipy.sparse.csgraph import reverse_cuthill_mckee
+
+        n = self.num_nodes
+        if n == 0:
+            return self, torch.zeros(0, dtype=torch.int64)
+        s, t = self._source.numpy(), self._target.numpy()
+        ones = np.ones(2 * s.size, dtype=np.int8)
+        pattern = sp.csr_matrix((ones, (np.concatenate([s, t]), np.concatenate([t, s]))), shape=(n, n))
+        pattern.sum_duplicates()
+        perm = torch.as_tensor(
+            np.asarray(reverse_cuthill_mckee(pattern, symmetric_mode=True), dtype=np.int64)
+        )
+        return self.permute(perm), perm
+
     def subgraph_edges(self, keep: torch.Tensor) -> "DirectedGraph":
         """The graph with only the edges where the boolean mask ``keep`` (E,) is true."""
         keep = torch.as_tensor(keep, dtype=torch.bool)
