@@ -11,7 +11,6 @@ STAMP := $(VENV)/.installed
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
-	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet "$(TORCH_SPEC)"
 	$(PY) -m pip install --quiet -e ".[test,tutorials]"
 	touch $(STAMP)
