@@ -40,30 +40,48 @@ def _scipy_linear_operator(op: SparseOperator) -> spla.LinearOperator:
     return spla.LinearOperator((n, n), matvec=mv, matmat=mv, dtype=dtype)
 
 
-def _power_iteration(op: SparseOperator, iterations: int = 200, seed: int = 0) -> float:
+def _start_vector(n: int, is_complex: bool, seed: int = 0) -> np.ndarray:
+    """A seeded random start vector: never orthogonal to the top eigenvector by construction.
+
+    (A constant start vector is an eigenvector of every Laplacian of a regular graph, and
+    orthogonal to the top eigenvector of an even cycle: Lanczos then misses the top.)
+    """
+    rng = np.random.default_rng(seed)
+    v = rng.standard_normal(n)
+    if is_complex:
+        v = v + 1j * rng.standard_normal(n)
+    return v
+
+
+def _power_iteration(op: SparseOperator, iterations: int = 300, seed: int = 0, shift: float = 0.0) -> float:
+    """Largest modulus eigenvalue of ``op - shift I`` plus ``shift`` (norm ratio of iterates)."""
     n = op.num_rows
-    gen = torch.Generator().manual_seed(seed)
     dtype = torch.complex128 if op.is_complex else torch.float64
     op64 = op.to(dtype, device="cpu")
-    v = torch.randn(n, 1, generator=gen, dtype=torch.float64).to(dtype)
+    v = torch.as_tensor(_start_vector(n, op.is_complex, seed)).reshape(n, 1).to(dtype)
     v = v / v.norm()
     lam = 0.0
     for _ in range(iterations):
-        w = _apply(op64, v)
+        w = _apply(op64, v) - shift * v
         norm = float(w.norm())
         if norm == 0.0:
-            return 0.0
+            return shift
         lam = norm
         v = w / norm
-    return lam
+    return lam + shift
 
 
 def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool = False) -> float:
     r"""The largest eigenvalue of a Hermitian operator (largest modulus otherwise), cached on ``op``.
 
-    Hermitian operators use Lanczos (``scipy.sparse.linalg.eigsh``, ``which="LA"``); if it does
-    not converge, or the operator is not Hermitian, power iteration estimates the spectral
-    radius. The value is stored in ``op.lmax`` and returned from there on later calls.
+    Hermitian operators with at most 64 rows use dense ``numpy.linalg.eigvalsh``; larger ones
+    use Lanczos (``scipy.sparse.linalg.eigsh``, ``which="LA"``, from a seeded random start
+    vector). A non-Hermitian operator that knows a Hermitian ``similar`` base (random walks,
+    the random-walk Laplacian) has the same eigenvalues as that base, which is used instead.
+    Otherwise, or if Lanczos does not converge, power iteration estimates the largest
+    eigenvalue (shifted by the lower end of a known ``spectrum`` when Hermitian, so a large
+    negative eigenvalue cannot win) or, for a general operator, the spectral radius.
+    The value is stored in ``op.lmax`` and returned from there on later calls.
 
     Args:
         op: a SparseOperator.
@@ -84,7 +102,10 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
         op.lmax = 0.0
         return 0.0
     value = None
-    if op.hermitian:
+    if not op.hermitian and op.similar is not None:
+        # op = diag(s) base diag(1/s): same eigenvalues as the Hermitian base
+        value = largest_eigenvalue(op.similar[0], tol=tol, refresh=refresh)
+    elif op.hermitian:
         if n <= 64:
             dense = op.to(torch.complex128 if op.is_complex else torch.float64, device="cpu").to_dense().numpy()
             value = float(np.linalg.eigvalsh(dense)[-1])
@@ -92,12 +113,13 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
             try:
                 vals = spla.eigsh(_scipy_linear_operator(op), k=1, which="LA", tol=tol,
                                   return_eigenvectors=False, maxiter=max(1000, 20 * n),
-                                  v0=np.ones(n))
+                                  v0=_start_vector(n, op.is_complex))
                 value = float(np.real(vals[0]))
             except (spla.ArpackNoConvergence, spla.ArpackError):
                 value = None
     if value is None:
-        value = _power_iteration(op)
+        shift = op.spectrum[0] if (op.hermitian and op.spectrum is not None) else 0.0
+        value = _power_iteration(op, shift=shift)
     op.lmax = value
     return value
 
