@@ -1,3 +1,426 @@
-"""(being written)"""
+r"""Generated directed graphs: a directed block model and small named families.
 
-__all__: list[str] = []
+Everything here is seeded through a :class:`numpy.random.Generator` (``seed`` may be None, an
+int, or a Generator) and vectorized: edge counts are drawn per block pair from the binomial
+law, then that many distinct node pairs are drawn at once; nothing allocates an N x N array
+or loops over nodes or edges in Python.
+
+Unordered node pairs of a block (or of the whole graph) are numbered by an exact integer
+bijection (:func:`_pair_from_index`), so drawing distinct pairs is drawing distinct integers
+from ``range(M)``: by independent uniform draws and de-duplication while fewer than half of
+the M pairs are wanted, and by drawing the complement when more than half are wanted. Both
+give every subset of the requested size the same probability.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from typing import Any, Sequence
+
+import numpy as np
+import torch
+
+from ..errors import GraphInputError
+from ..graph import DirectedGraph
+
+__all__ = [
+    "directed_block_model",
+    "directed_cycle",
+    "out_star",
+    "in_star",
+    "random_out_graph",
+    "layered_flow_graph",
+]
+
+_TOL = 1e-9
+
+
+# ---------------------------------------------------------------------- validation helpers
+def _rng(seed: Any) -> np.random.Generator:
+    if isinstance(seed, np.random.Generator):
+        return seed
+    if seed is None or (isinstance(seed, numbers.Integral) and not isinstance(seed, bool) and seed >= 0):
+        return np.random.default_rng(seed)
+    raise GraphInputError(f"seed must be None, a non-negative int or a numpy Generator; got {seed!r}")
+
+
+def _count(name: str, value: Any, minimum: int = 0) -> int:
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral) or int(value) < minimum:
+        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {value!r}")
+    return int(value)
+
+
+def _probability(name: str, value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real) or not (0.0 <= float(value) <= 1.0):
+        raise GraphInputError(f"{name} must be a probability in [0, 1]; got {value!r}")
+    return float(value)
+
+
+def _sizes(name: str, sizes: Any) -> np.ndarray:
+    try:
+        arr = np.asarray(sizes)
+    except Exception as exc:  # pragma: no cover - numpy raises many kinds
+        raise GraphInputError(f"{name} must be a 1-D sequence of non-negative integers; got {sizes!r}") from exc
+    if arr.ndim != 1 or arr.size == 0:
+        raise GraphInputError(f"{name} must be a non-empty 1-D sequence of non-negative integers; got shape {arr.shape}")
+    if arr.dtype.kind not in "iu" or (arr < 0).any():
+        raise GraphInputError(f"{name} must hold non-negative integers; got {arr.tolist()}")
+    return arr.astype(np.int64)
+
+
+def _block_matrix(name: str, value: Any, blocks: int) -> np.ndarray:
+    arr = np.asarray(value, dtype=np.float64) if not isinstance(value, torch.Tensor) else value.detach().cpu().double().numpy()
+    if arr.ndim == 0:
+        arr = np.full((blocks, blocks), float(arr))
+    if arr.shape != (blocks, blocks):
+        raise GraphInputError(f"{name} must be a scalar or a ({blocks}, {blocks}) matrix, one entry per block pair; got shape {arr.shape}")
+    if not np.all(np.isfinite(arr)):
+        a, b = np.argwhere(~np.isfinite(arr))[0]
+        raise GraphInputError(f"{name}[{a}, {b}] must be finite; got {arr[a, b]}")
+    bad = np.argwhere((arr < 0) | (arr > 1))
+    if bad.size:
+        a, b = bad[0]
+        raise GraphInputError(f"{name}[{a}, {b}] must be a probability in [0, 1]; got {arr[a, b]}")
+    return arr
+
+
+def _check_density(density: Any, blocks: int) -> np.ndarray:
+    p = _block_matrix("density", density, blocks)
+    bad = np.argwhere(np.abs(p - p.T) > _TOL)
+    if bad.size:
+        a, b = bad[0]
+        raise GraphInputError(
+            f"density must be symmetric (it is the probability of an edge between an unordered pair of "
+            f"nodes); got density[{a}, {b}] = {p[a, b]} but density[{b}, {a}] = {p[b, a]}"
+        )
+    return p
+
+
+def _check_flow(flow: Any, blocks: int) -> np.ndarray:
+    f = _block_matrix("flow", flow, blocks)
+    for a in range(blocks):  # loop over blocks, not nodes
+        if abs(f[a, a] - 0.5) > _TOL:
+            raise GraphInputError(
+                f"flow[{a}, {a}] must be 0.5 (an edge inside a block points either way with equal "
+                f"probability); got {f[a, a]}"
+            )
+    total = f + f.T
+    bad = np.argwhere(np.abs(total - 1.0) > _TOL)
+    if bad.size:
+        a, b = bad[0]
+        raise GraphInputError(
+            f"flow[{a}, {b}] + flow[{b}, {a}] must equal 1 (an edge between blocks {a} and {b} points one "
+            f"way or the other); got {f[a, b]} + {f[b, a]} = {total[a, b]}"
+        )
+    return f
+
+
+# ---------------------------------------------------------------------- exact pair sampling
+def _num_pairs(n: int) -> int:
+    """Unordered pairs of distinct nodes among n."""
+    return n * (n - 1) // 2
+
+
+def _pair_from_index(k: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
+    r"""The k-th unordered pair of distinct nodes of ``range(n)``, as (low, high); exact integers.
+
+    Pair k is :math:`\{c, (c + d) \bmod n\}` with ``d = k // n + 1``, ``c = k % n`` for
+    ``k < n h`` (h = (n - 1) // 2), and ``d = n / 2``, ``c = k - n h`` for the last n / 2 pairs
+    when n is even. Every unordered pair appears exactly once for k in ``range(n (n - 1) / 2)``.
+    """
+    k = np.asarray(k, dtype=np.int64)
+    h = (n - 1) // 2
+    main = k < n * h
+    d = np.where(main, k // max(n, 1) + 1, n // 2)
+    c = np.where(main, k % max(n, 1), k - n * h)
+    other = (c + d) % max(n, 1)
+    return np.minimum(c, other), np.maximum(c, other)
+
+
+def _index_from_pair(u: np.ndarray, v: np.ndarray, n: int) -> np.ndarray:
+    """Inverse of :func:`_pair_from_index` for distinct u, v (either order)."""
+    lo = np.minimum(u, v).astype(np.int64)
+    hi = np.maximum(u, v).astype(np.int64)
+    gap = hi - lo
+    h = (n - 1) // 2
+    forward = gap < n - gap  # the short way round goes lo -> hi
+    d = np.where(forward, gap, n - gap)
+    c = np.where(forward, lo, hi)
+    half = 2 * gap == n  # only for even n: the diameter pairs, started at lo < n / 2
+    return np.where(half, n * h + lo, (d - 1) * n + c)
+
+
+def _sorted_unique(x: np.ndarray) -> np.ndarray:
+    """Sorted distinct values by one sort (np.unique is much slower on large int64 arrays here)."""
+    s = np.sort(x)
+    if s.size < 2:
+        return s
+    keep = np.empty(s.size, dtype=bool)
+    keep[0] = True
+    np.not_equal(s[1:], s[:-1], out=keep[1:])
+    return s[keep]
+
+
+def _sample_few(rng: np.random.Generator, m: int, k: int) -> np.ndarray:
+    """k distinct integers of range(m), uniformly over k-subsets, for k <= m / 2 (sorted).
+
+    Independent uniform draws are pooled and de-duplicated until k distinct values are seen;
+    the distinct set, given its size, is uniform over subsets of that size (the draws are
+    exchangeable under relabelling), so dropping a uniform random surplus keeps it uniform.
+    """
+    found = np.empty(0, dtype=np.int64)
+    while found.size < k:
+        have, want, left = found.size, k - found.size, m - found.size
+        draws = int(math.ceil(-left * math.log1p(-want / left) * 1.02)) + 16
+        found = _sorted_unique(np.concatenate([found, rng.integers(0, m, size=draws, dtype=np.int64)]))
+    if found.size > k:
+        found = np.delete(found, rng.choice(found.size, found.size - k, replace=False))
+    return found
+
+
+def _sample_distinct(rng: np.random.Generator, m: int, k: int) -> np.ndarray:
+    """k distinct integers of range(m), every k-subset equally likely (sorted).
+
+    Few (k <= m / 2): pooled uniform draws, de-duplicated. Many: the complement is drawn
+    that way and the rest enumerated, which costs O(m) <= O(2 k) memory.
+    """
+    if k <= 0:
+        return np.empty(0, dtype=np.int64)
+    if k >= m:
+        return np.arange(m, dtype=np.int64)
+    if 2 * k <= m:
+        return _sample_few(rng, m, k)
+    keep = np.ones(m, dtype=bool)
+    keep[_sample_few(rng, m, m - k)] = False
+    return np.flatnonzero(keep).astype(np.int64)
+
+
+def _sample_avoiding(rng: np.random.Generator, m: int, k: int, taken: np.ndarray) -> np.ndarray:
+    """k distinct integers of range(m) outside the sorted distinct array ``taken``, uniformly.
+
+    Draws ranks in the complement and maps rank r to the r-th integer not in ``taken``
+    (``r + #{taken <= value}``, by a binary search on ``taken - arange``).
+    """
+    free = m - taken.size
+    if k > free:
+        raise GraphInputError(f"cannot draw {k} distinct pairs: only {free} are free")
+    ranks = _sample_distinct(rng, free, k)
+    shifted = taken - np.arange(taken.size, dtype=np.int64)
+    return ranks + np.searchsorted(shifted, ranks, side="right")
+
+
+def _join(parts: list) -> np.ndarray:
+    if not parts:
+        return np.empty(0, dtype=np.int64)
+    return parts[0] if len(parts) == 1 else np.concatenate(parts)
+
+
+def _block_edges(rng, sizes: np.ndarray, prob: np.ndarray, direction: np.ndarray):
+    """Edges of the block model: (source, target, low, high), low < high the unordered pair."""
+    offsets = np.concatenate([[0], np.cumsum(sizes)])
+    blocks = sizes.size
+    srcs, dsts, lows, highs = [], [], [], []
+    for a in range(blocks):  # loop over block pairs only; all edge work is vectorized
+        for b in range(a, blocks):
+            na, nb = int(sizes[a]), int(sizes[b])
+            m = _num_pairs(na) if a == b else na * nb
+            if m == 0 or prob[a, b] == 0:
+                continue
+            k = int(rng.binomial(m, prob[a, b]))
+            idx = _sample_distinct(rng, m, k)
+            if a == b:
+                lo, hi = _pair_from_index(idx, na)
+                lo += offsets[a]
+                hi += offsets[a]
+            else:
+                lo, hi = np.divmod(idx, nb)
+                lo += offsets[a]
+                hi += offsets[b]
+            forward = rng.random(k) < direction[a, b]
+            srcs.append(np.where(forward, lo, hi)); dsts.append(np.where(forward, hi, lo))
+            lows.append(lo); highs.append(hi)
+    return _join(srcs), _join(dsts), _join(lows), _join(highs)
+
+
+# ---------------------------------------------------------------------- block model
+def directed_block_model(sizes: Sequence[int], density: Any, flow: Any, noise: float = 0.0,
+                         seed: Any = None) -> tuple[DirectedGraph, torch.Tensor]:
+    r"""Directed stochastic block model: density picks the edges, flow picks their direction.
+
+    Nodes are numbered block by block (block 0 first). Each unordered pair of distinct nodes
+    u in block a, v in block b is joined with probability ``density[a, b]``, independently;
+    the edge then points a -> b with probability ``flow[a, b]`` and b -> a otherwise. So the
+    number of edges between blocks a != b is Binomial(n_a n_b, density[a, b]) and inside block
+    a Binomial(n_a (n_a - 1) / 2, density[a, a]). Then ``round(noise * E)`` extra edges (E the
+    block-model edge count) join node pairs chosen uniformly among the pairs not yet joined,
+    each pointing either way with probability 1/2. The result has no self-loops and no
+    reciprocal edges; every weight is 1.
+
+    Args:
+        sizes: block sizes (n_1, ..., n_B), non-negative integers.
+        density: a probability, or a symmetric (B, B) matrix of probabilities.
+        flow: (B, B) matrix with ``flow[a, b] + flow[b, a] = 1`` off the diagonal and 0.5 on
+            it (checked to 1e-9).
+        noise: non-negative fraction of extra uniformly random edges (default 0).
+        seed: None, an int or a numpy Generator (default None: fresh entropy).
+
+    Returns:
+        (graph, labels): a DirectedGraph on N = sum(sizes) nodes and the int64 block label of
+        each node, shape (N,).
+
+    Notes:
+        Edge counts are drawn from the binomial law per block pair, then that many distinct
+        pairs are drawn exactly (uniform over subsets of that size); dense blocks (more than
+        half of the pairs present) are drawn through their complement. Time and memory are
+        O(N + E) plus O(number of block pairs); there is no N x N array.
+
+    Example:
+        >>> g, y = directed_block_model([50, 50], 0.1, [[0.5, 0.9], [0.1, 0.5]], seed=0)
+        >>> g.num_nodes, y.bincount().tolist()
+        (100, [50, 50])
+    """
+    sizes_arr = _sizes("sizes", sizes)
+    blocks = sizes_arr.size
+    prob = _check_density(density, blocks)
+    direction = _check_flow(flow, blocks)
+    if isinstance(noise, bool) or not isinstance(noise, numbers.Real) or not math.isfinite(noise) or noise < 0:
+        raise GraphInputError(f"noise must be a finite fraction >= 0 of the edge count; got {noise!r}")
+    rng = _rng(seed)
+    n = int(sizes_arr.sum())
+    src, dst, lo, hi = _block_edges(rng, sizes_arr, prob, direction)
+    extra = int(round(float(noise) * lo.size))
+    if extra:
+        free = _num_pairs(n) - lo.size
+        if extra > free:
+            raise GraphInputError(
+                f"noise asks for {extra} extra edges but only {free} node pairs are not yet joined; "
+                f"lower noise (accepted: noise * edges <= free pairs)"
+            )
+        taken = np.sort(_index_from_pair(lo, hi, n))
+        del lo, hi
+        nlo, nhi = _pair_from_index(_sample_avoiding(rng, _num_pairs(n), extra, taken), n)
+        flip = rng.random(extra) < 0.5
+        src = np.concatenate([src, np.where(flip, nhi, nlo)])
+        dst = np.concatenate([dst, np.where(flip, nlo, nhi)])
+    labels = torch.as_tensor(np.repeat(np.arange(blocks, dtype=np.int64), sizes_arr))
+    return DirectedGraph(torch.as_tensor(src), torch.as_tensor(dst), None, n), labels
+
+
+# ---------------------------------------------------------------------- small families
+def directed_cycle(n: int) -> DirectedGraph:
+    r"""The directed cycle :math:`0 \to 1 \to \dots \to n - 1 \to 0`.
+
+    For n >= 3 its normalized magnetic Laplacian has the closed-form spectrum
+    :math:`1 - \cos(2\pi (k / n + q))`, k = 0..n-1. n = 1 is a self-loop and n = 2 a
+    reciprocal pair.
+
+    Args:
+        n: number of nodes, >= 1.
+
+    Example:
+        >>> directed_cycle(4).target.tolist()
+        [1, 2, 3, 0]
+    """
+    n = _count("n", n, 1)
+    src = torch.arange(n)
+    return DirectedGraph(src, (src + 1) % n, None, n)
+
+
+def out_star(n: int) -> DirectedGraph:
+    r"""A hub sending to every leaf: edges :math:`0 \to v` for v = 1..n-1 (n nodes in all).
+
+    Example:
+        >>> out_star(4).target.tolist()
+        [1, 2, 3]
+    """
+    n = _count("n", n, 1)
+    leaves = torch.arange(1, n)
+    return DirectedGraph(torch.zeros_like(leaves), leaves, None, n)
+
+
+def in_star(n: int) -> DirectedGraph:
+    r"""Every leaf sending to the hub: edges :math:`v \to 0` for v = 1..n-1 (the reverse of :func:`out_star`).
+
+    Example:
+        >>> in_star(4).source.tolist()
+        [1, 2, 3]
+    """
+    return out_star(n).reverse()
+
+
+def random_out_graph(n: int, k: int, seed: Any = None) -> DirectedGraph:
+    r"""Each node sends k edges to k distinct other nodes chosen uniformly (no self-loops).
+
+    Every node has out-degree exactly k; in-degrees vary. The k targets of each node are a
+    uniform k-subset of the other n - 1 nodes, drawn for all nodes at once with Floyd's
+    algorithm (R. W. Floyd, "A sample of brilliance", CACM 1987): k vectorized steps, O(n k^2)
+    work, no N x N array.
+
+    Args:
+        n: number of nodes, >= 1.
+        k: out-degree, 0 <= k <= n - 1.
+        seed: None, an int or a numpy Generator.
+
+    Example:
+        >>> g = random_out_graph(10, 3, seed=0)
+        >>> torch.bincount(g.source, minlength=10).tolist() == [3] * 10
+        True
+    """
+    n = _count("n", n, 1)
+    k = _count("k", k, 0)
+    if k > n - 1:
+        raise GraphInputError(f"k must be at most n - 1 = {n - 1} (targets are distinct other nodes); got k = {k}")
+    rng = _rng(seed)
+    others = n - 1
+    chosen = np.empty((n, k), dtype=np.int64)
+    for step, j in enumerate(range(others - k, others)):  # Floyd: k steps, vectorized over nodes
+        t = rng.integers(0, j + 1, size=n)
+        seen = (chosen[:, :step] == t[:, None]).any(axis=1)
+        chosen[:, step] = np.where(seen, j, t)
+    src = np.repeat(np.arange(n, dtype=np.int64), k)
+    offset = chosen.reshape(-1)
+    dst = offset + (offset >= src)  # skip the node itself
+    return DirectedGraph(torch.as_tensor(src), torch.as_tensor(dst), None, n)
+
+
+def layered_flow_graph(layer_sizes: Sequence[int], forward_prob: float, back_prob: float = 0.0,
+                       seed: Any = None) -> tuple[DirectedGraph, torch.Tensor]:
+    r"""Nodes in ordered layers; edges mostly run forward from one layer to the next.
+
+    For consecutive layers l and l + 1, each pair (u in layer l, v in layer l + 1) gets the
+    edge u -> v with probability ``forward_prob`` and, independently, the edge v -> u with
+    probability ``back_prob``. No edges inside a layer or between non-adjacent layers.
+    (Think of depots feeding regional hubs feeding stores in a freight network.)
+
+    Args:
+        layer_sizes: nodes per layer, in order; non-negative integers.
+        forward_prob: probability of each forward edge.
+        back_prob: probability of each backward edge (default 0).
+        seed: None, an int or a numpy Generator.
+
+    Returns:
+        (graph, layer): the graph and the int64 layer index of each node, shape (N,).
+
+    Example:
+        >>> g, layer = layered_flow_graph([3, 4, 2], 1.0, 0.0, seed=0)
+        >>> g.num_edges, bool((layer[g.target] == layer[g.source] + 1).all())
+        (20, True)
+    """
+    sizes = _sizes("layer_sizes", layer_sizes)
+    p_fwd = _probability("forward_prob", forward_prob)
+    p_back = _probability("back_prob", back_prob)
+    rng = _rng(seed)
+    offsets = np.concatenate([[0], np.cumsum(sizes)])
+    srcs, dsts = [], []
+    for layer in range(sizes.size - 1):  # loop over layers only
+        na, nb = int(sizes[layer]), int(sizes[layer + 1])
+        m = na * nb
+        for p, forward in ((p_fwd, True), (p_back, False)):
+            idx = _sample_distinct(rng, m, int(rng.binomial(m, p)) if m else 0)
+            u, v = idx // max(nb, 1) + offsets[layer], idx % max(nb, 1) + offsets[layer + 1]
+            srcs.append(u if forward else v); dsts.append(v if forward else u)
+    src = np.concatenate(srcs) if srcs else np.empty(0, dtype=np.int64)
+    dst = np.concatenate(dsts) if dsts else np.empty(0, dtype=np.int64)
+    labels = torch.as_tensor(np.repeat(np.arange(sizes.size, dtype=np.int64), sizes))
+    return DirectedGraph(torch.as_tensor(src), torch.as_tensor(dst), None, int(sizes.sum())), labels

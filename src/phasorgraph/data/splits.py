@@ -1,3 +1,228 @@
-"""(being written)"""
+r"""Seeded, leak-free splits: stratified node splits and link splits for existence or direction.
 
-__all__: list[str] = []
+A *link* is an unordered pair {u, v} of distinct nodes joined by an edge in at least one
+direction. Link splits hold out whole links: every edge of a held-out link is removed from
+``train_graph`` in both directions, so no operator built from ``train_graph`` sees it.
+Self-loops are never held out and stay in ``train_graph``.
+"""
+
+from __future__ import annotations
+
+import numbers
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+
+from ..errors import GraphInputError
+from ..graph import DirectedGraph
+from .generators import _index_from_pair, _num_pairs, _pair_from_index, _rng, _sample_avoiding
+
+__all__ = ["NodeSplit", "LinkSet", "LinkSplit", "split_nodes", "split_links"]
+
+_TASKS = ("existence", "direction")
+
+
+@dataclass(frozen=True)
+class NodeSplit:
+    """Disjoint sorted int64 node-index tensors ``train``, ``val``, ``test`` covering every node."""
+
+    train: torch.Tensor
+    val: torch.Tensor
+    test: torch.Tensor
+
+
+@dataclass(frozen=True)
+class LinkSet:
+    """Node pairs to score: ``pairs`` (2, K) int64 as (source row, target row), ``labels`` (K,) int64 in {0, 1}."""
+
+    pairs: torch.Tensor
+    labels: torch.Tensor
+
+    def __len__(self) -> int:
+        return int(self.labels.numel())
+
+
+@dataclass(frozen=True)
+class LinkSplit:
+    """``train_graph`` (held-out links removed in both directions) and the ``train``, ``val``, ``test`` LinkSets."""
+
+    task: str
+    train_graph: DirectedGraph
+    train: LinkSet
+    val: LinkSet
+    test: LinkSet
+
+
+def _fraction(name: str, value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, numbers.Real) or not (0.0 <= float(value) < 1.0):
+        raise GraphInputError(f"{name} must be a fraction in [0, 1); got {value!r}")
+    return float(value)
+
+
+def _fractions(first: str, a: Any, second: str, b: Any, *, allow_one: bool) -> tuple[float, float]:
+    fa, fb = _fraction(first, a), _fraction(second, b)
+    if fa + fb > 1.0 or (not allow_one and fa + fb >= 1.0):
+        bound = "at most 1" if allow_one else "below 1 (the training split must keep something)"
+        raise GraphInputError(f"{first} + {second} must be {bound}; got {fa} + {fb} = {fa + fb}")
+    return fa, fb
+
+
+# ---------------------------------------------------------------------- nodes
+def split_nodes(labels: Any, train: float = 0.6, val: float = 0.2, seed: Any = None) -> NodeSplit:
+    r"""Stratified random node split: within each class the same fractions go to train and val.
+
+    For a class with :math:`n_c` nodes, ``round(train * n_c)`` random nodes of that class go to
+    train, ``round(val * n_c)`` (capped at what is left) to val, and the rest to test; so test
+    gets about ``1 - train - val`` of every class. Classes are the distinct values of
+    ``labels`` (any integers).
+
+    Args:
+        labels: (N,) integer class of each node (tensor, array or list).
+        train: fraction for training, in [0, 1) (default 0.6).
+        val: fraction for validation, in [0, 1) (default 0.2); ``train + val <= 1``.
+        seed: None, an int or a numpy Generator.
+
+    Returns:
+        NodeSplit with sorted int64 tensors ``train``, ``val``, ``test``; together they hold
+        every node exactly once.
+
+    Example:
+        >>> s = split_nodes([0, 0, 0, 0, 1, 1, 1, 1], train=0.5, val=0.25, seed=0)
+        >>> len(s.train), len(s.val), len(s.test)
+        (4, 2, 2)
+    """
+    y = labels.detach().cpu().numpy() if isinstance(labels, torch.Tensor) else np.asarray(labels)
+    if y.ndim != 1 or (y.size and y.dtype.kind not in "iu"):
+        raise GraphInputError(f"labels must be a 1-D array of integer classes; got shape {y.shape}, dtype {y.dtype}")
+    fr_train, fr_val = _fractions("train", train, "val", val, allow_one=True)
+    rng = _rng(seed)
+    n = y.size
+    _, cls = np.unique(y, return_inverse=True)
+    order = rng.permutation(n)
+    order = order[np.argsort(cls[order], kind="stable")]  # random order within each class
+    counts = np.bincount(cls, minlength=int(cls.max()) + 1 if n else 0)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]]) if n else np.empty(0, dtype=np.int64)
+    c_sorted = cls[order]
+    rank = np.arange(n) - starts[c_sorted]
+    n_train = np.rint(fr_train * counts).astype(np.int64)
+    n_val = np.minimum(np.rint(fr_val * counts).astype(np.int64), counts - n_train)
+    in_train = rank < n_train[c_sorted]
+    in_val = ~in_train & (rank < (n_train + n_val)[c_sorted])
+    part = lambda mask: torch.as_tensor(np.sort(order[mask]).astype(np.int64))  # noqa: E731
+    return NodeSplit(part(in_train), part(in_val), part(~in_train & ~in_val))
+
+
+# ---------------------------------------------------------------------- links
+def _link_set(pos_src, pos_dst, neg_src, neg_dst) -> LinkSet:
+    pairs = np.stack([np.concatenate([pos_src, neg_src]), np.concatenate([pos_dst, neg_dst])]).astype(np.int64)
+    labels = np.concatenate([np.ones(pos_src.size, np.int64), np.zeros(neg_src.size, np.int64)])
+    return LinkSet(torch.as_tensor(pairs), torch.as_tensor(labels))
+
+
+def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: float = 0.1,
+                test_fraction: float = 0.1, seed: Any = None) -> LinkSplit:
+    r"""Leak-free link split for link existence or link direction prediction.
+
+    Links (unordered pairs of distinct nodes with an edge in at least one direction) are
+    shuffled; ``round(val_fraction * L)`` go to val, ``round(test_fraction * L)`` to test and
+    the rest to train, where L counts the links eligible for the task. ``train_graph`` is
+    ``graph`` without every edge of the val and test links, in both directions (weights of
+    the kept edges unchanged, same ``num_nodes``); self-loops always stay.
+
+    ``task="existence"`` (is there an edge between u and v, either way?): all links are
+    eligible. Each split holds one positive pair (label 1) per link, oriented as an edge of
+    the graph (u, v) with u -> v present (for a reciprocal link, the lower id first), followed
+    by as many negative pairs (label 0): pairs of distinct nodes with no edge in either
+    direction in the *full* graph, drawn uniformly without repetition across all splits and
+    oriented at random. The train split's positives are the links kept in ``train_graph``.
+
+    ``task="direction"`` (which way does the edge point?): only one-way links are eligible;
+    **reciprocal links (u -> v and v -> u both present) are excluded from the task** and stay
+    in ``train_graph``. For each one-way edge u -> v of a split the pair (u, v) has label 1
+    and the pair (v, u) label 0 (positives first, then their reverses).
+
+    Args:
+        graph: the full DirectedGraph.
+        task: "existence" (default) or "direction".
+        val_fraction: fraction of eligible links for validation (default 0.1).
+        test_fraction: fraction of eligible links for testing (default 0.1); the two sum below 1.
+        seed: None, an int or a numpy Generator.
+
+    Returns:
+        LinkSplit with ``task``, ``train_graph`` and LinkSets ``train``, ``val``, ``test``, each
+        ``pairs`` (2, K) int64 and ``labels`` (K,) int64.
+
+    Notes:
+        Negatives are drawn exactly and vectorized: unordered pairs are numbered by an integer
+        bijection and negatives are uniform ranks in the complement of the links. If the graph
+        has fewer non-adjacent pairs than the negatives asked for, a GraphInputError says so.
+
+    Example:
+        >>> from phasorgraph.data import random_out_graph
+        >>> s = split_links(random_out_graph(30, 2, seed=0), "direction", 0.1, 0.1, seed=0)
+        >>> int(s.val.labels.sum()) * 2 == len(s.val)
+        True
+    """
+    if not isinstance(graph, DirectedGraph):
+        raise GraphInputError(f"graph must be a DirectedGraph; got {type(graph).__name__}")
+    if task not in _TASKS:
+        raise GraphInputError(f"task must be one of {_TASKS}; got {task!r}")
+    fr_val, fr_test = _fractions("val_fraction", val_fraction, "test_fraction", test_fraction, allow_one=False)
+    rng = _rng(seed)
+    n = graph.num_nodes
+    src, dst = graph.source.numpy(), graph.target.numpy()
+    off = src != dst
+    lo = np.minimum(src, dst)[off]
+    hi = np.maximum(src, dst)[off]
+    key = lo * max(n, 1) + hi
+    links, first, count = np.unique(key, return_index=True, return_counts=True)
+    reciprocal = count == 2
+    # orientation of each link's representative edge: the edge itself for one-way links,
+    # low -> high for reciprocal ones (the first of its two edges in key order is arbitrary)
+    link_src = np.where(reciprocal, lo[first], src[off][first])
+    link_dst = np.where(reciprocal, hi[first], dst[off][first])
+    eligible = np.arange(links.size) if task == "existence" else np.flatnonzero(~reciprocal)
+    chosen = eligible[rng.permutation(eligible.size)]
+    n_val = int(round(fr_val * chosen.size))
+    n_test = int(round(fr_test * chosen.size))
+    val_ids, test_ids = chosen[:n_val], chosen[n_val:n_val + n_test]
+    train_ids = chosen[n_val + n_test:]
+
+    held = np.zeros(links.size, dtype=bool)
+    held[val_ids] = True
+    held[test_ids] = True
+    keep = np.ones(src.size, dtype=bool)
+    edge_link = np.searchsorted(links, key)
+    keep[np.flatnonzero(off)[held[edge_link]]] = False
+    train_graph = graph.subgraph_edges(torch.as_tensor(keep))
+
+    if task == "direction":
+        def sets(ids):
+            s, d = link_src[ids], link_dst[ids]
+            return _link_set(s, d, d, s)
+        return LinkSplit(task, train_graph, sets(train_ids), sets(val_ids), sets(test_ids))
+
+    sizes = [train_ids.size, val_ids.size, test_ids.size]
+    total = sum(sizes)
+    if total:
+        taken = np.sort(_index_from_pair(links // max(n, 1), links % max(n, 1), n))
+        free = _num_pairs(n) - taken.size
+        if total > free:
+            raise GraphInputError(
+                f"graph has only {free} non-adjacent node pairs but the existence task needs {total} "
+                f"negatives (one per link); the graph is too dense for balanced negatives"
+            )
+        neg = _sample_avoiding(rng, _num_pairs(n), total, taken)
+        neg = neg[rng.permutation(neg.size)]
+        nlo, nhi = _pair_from_index(neg, n)
+        flip = rng.random(neg.size) < 0.5
+        neg_src, neg_dst = np.where(flip, nhi, nlo), np.where(flip, nlo, nhi)
+    else:
+        neg_src = neg_dst = np.empty(0, dtype=np.int64)
+    bounds = np.cumsum([0] + sizes)
+    out = []
+    for ids, a, b in zip((train_ids, val_ids, test_ids), bounds[:-1], bounds[1:]):
+        out.append(_link_set(link_src[ids], link_dst[ids], neg_src[a:b], neg_dst[a:b]))
+    return LinkSplit(task, train_graph, *out)
