@@ -75,9 +75,18 @@ class DirectedGraph:
     Args:
         source: int64 tensor (E,) of edge tails.
         target: int64 tensor (E,) of edge heads.
-        weight: float tensor (E,) or None (all ones). Any finite real; operators that need
-            non-negative weights check that themselves.
-        num_nodes: number of nodes N (>= every index + 1). Nodes without edges are isolated.
+        weight: float tensor (E,), a scalar, or None (all ones). Any finite real number is
+            accepted, negative ones included (a signed graph is a valid DirectedGraph); the
+            Laplacians, walks and magnetic operators in :mod:`phasorgraph.operators` need
+            non-negative weights and refuse a graph with a negative weight. NaN and inf are
+            refused here.
+        num_nodes: number of nodes N (>= every index + 1; default largest index + 1). Nodes
+            without edges are isolated.
+
+    Raises:
+        GraphInputError: indices that are negative, non-integer or >= num_nodes; source and
+            target of different lengths; a weight that is not finite or of the wrong length;
+            a negative or non-integer num_nodes.
 
     Attributes:
         source, target (Tensor): int64 (E,), sorted by (source, target).
@@ -107,6 +116,9 @@ class DirectedGraph:
         if num_nodes is None:
             num_nodes = largest + 1
         else:
+            if isinstance(num_nodes, torch.Tensor) and num_nodes.dim() == 0 and not num_nodes.is_floating_point() \
+                    and num_nodes.dtype != torch.bool and not num_nodes.is_complex():
+                num_nodes = int(num_nodes)
             if isinstance(num_nodes, bool) or not isinstance(num_nodes, numbers.Integral):
                 raise GraphInputError(f"num_nodes must be a non-negative integer; got {num_nodes!r}")
             num_nodes = int(num_nodes)
@@ -212,11 +224,21 @@ class DirectedGraph:
             arr = np.asarray(matrix)
             if arr.ndim != 2:
                 raise GraphInputError(f"matrix must be 2-D (square); got shape {arr.shape}")
+            if arr.dtype == object or arr.dtype.kind not in "iufcb":
+                raise GraphInputError(f"matrix must hold real numbers; got dtype {arr.dtype}")
             coo = sp.coo_matrix(arr)
         if coo.shape[0] != coo.shape[1]:
             raise GraphInputError(f"matrix must be square; got shape {coo.shape}")
         if np.iscomplexobj(coo.data):
             raise GraphInputError(f"matrix must be real; got dtype {coo.data.dtype}")
+        if coo.data.dtype == object or coo.data.dtype.kind not in "iufb":
+            raise GraphInputError(f"matrix must hold real numbers; got dtype {coo.data.dtype}")
+        bad = ~np.isfinite(coo.data.astype(np.float64))
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise GraphInputError(
+                f"matrix must be finite; entry ({int(coo.row[k])}, {int(coo.col[k])}) is {coo.data[k]}"
+            )
         return cls(coo.row.astype(np.int64), coo.col.astype(np.int64), coo.data, coo.shape[0])
 
     @classmethod
@@ -279,8 +301,13 @@ class DirectedGraph:
         """
         p = _as_index_tensor("perm", perm)
         n = self.num_nodes
-        if p.numel() != n or (n and not torch.equal(torch.sort(p).values, torch.arange(n))):
+        if p.numel() != n:
             raise GraphInputError(f"perm must be a permutation of 0..{n - 1} (length {n}); got length {p.numel()}")
+        if n and not torch.equal(torch.sort(p).values, torch.arange(n)):
+            raise GraphInputError(
+                f"perm must be a permutation of 0..{n - 1}: every node exactly once; got a repeated "
+                f"or out-of-range value"
+            )
         inverse = torch.empty_like(p)
         inverse[p] = torch.arange(n)
         return DirectedGraph(inverse[self._source], inverse[self._target], self._weight, n)
