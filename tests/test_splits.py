@@ -1,0 +1,173 @@
+"""Node and link splits: stratification, leak-freedom, true negatives, direction labels,
+seeded determinism, bad input. Edge membership is checked with networkx (DiGraph.has_edge)."""
+
+import networkx as nx
+import numpy as np
+import pytest
+import torch
+
+from phasorgraph import DirectedGraph, GraphInputError, magnetic_laplacian, normalized_laplacian
+from phasorgraph.data import directed_block_model, split_links, split_nodes
+
+
+# ---------------------------------------------------------------------- nodes
+def test_node_split_is_a_stratified_partition():
+    labels = torch.tensor([0] * 50 + [1] * 30 + [2] * 7 + [5] * 13)
+    s = split_nodes(labels, train=0.6, val=0.2, seed=0)
+    every = torch.cat([s.train, s.val, s.test])
+    assert torch.equal(torch.sort(every).values, torch.arange(100))  # disjoint and covering
+    for c, n_c in [(0, 50), (1, 30), (2, 7), (5, 13)]:
+        assert int((labels[s.train] == c).sum()) == round(0.6 * n_c)
+        assert int((labels[s.val] == c).sum()) == round(0.2 * n_c)
+    for part in (s.train, s.val, s.test):
+        assert part.dtype == torch.int64 and torch.equal(part, torch.sort(part).values)
+
+
+def test_node_split_is_seeded_and_shuffled():
+    labels = np.repeat([0, 1], 40)
+    a, b, c = (split_nodes(labels, 0.5, 0.25, seed=s) for s in (3, 3, 4))
+    assert torch.equal(a.train, b.train) and torch.equal(a.test, b.test)
+    assert not torch.equal(a.train, c.train)
+    assert not torch.equal(a.train[:20], torch.arange(20))  # not simply the first nodes
+
+
+def test_node_split_edge_cases():
+    s = split_nodes([1, 1, 1], train=0.0, val=0.0, seed=0)
+    assert s.train.numel() == 0 and s.test.tolist() == [0, 1, 2]
+    s = split_nodes([], 0.5, 0.5, seed=0)
+    assert s.train.numel() == s.val.numel() == s.test.numel() == 0
+
+
+@pytest.mark.parametrize(
+    "args,message",
+    [
+        (([0, 1], 0.7, 0.5), r"train \+ val must be at most 1; got 0.7 \+ 0.5 = 1.2"),
+        (([0, 1], -0.1, 0.2), r"train must be a fraction in \[0, 1\); got -0.1"),
+        (([0, 1], 0.5, "a"), r"val must be a fraction in \[0, 1\); got 'a'"),
+        (([0.5, 1.0], 0.5, 0.2), r"labels must be a 1-D array of integer classes"),
+        (([[0, 1]], 0.5, 0.2), r"labels must be a 1-D array of integer classes; got shape \(1, 2\)"),
+    ],
+)
+def test_node_split_rejects_bad_input(args, message):
+    with pytest.raises(GraphInputError, match=message):
+        split_nodes(*args, seed=0)
+
+
+# ---------------------------------------------------------------------- links
+@pytest.fixture(scope="module")
+def full_graph():
+    """A block-model graph plus some reciprocal edges and self-loops (weights vary)."""
+    g, _ = directed_block_model([40, 40], [[0.15, 0.05], [0.05, 0.15]], [[0.5, 0.9], [0.1, 0.5]], seed=0)
+    rng = np.random.default_rng(0)
+    back = rng.choice(g.num_edges, 40, replace=False)  # make 40 links reciprocal
+    loops = torch.tensor([3, 17, 55])
+    src = torch.cat([g.source, g.target[back], loops])
+    dst = torch.cat([g.target, g.source[back], loops])
+    w = torch.as_tensor(rng.uniform(0.5, 2.0, src.numel()))
+    return DirectedGraph(src, dst, w, g.num_nodes)
+
+
+def pairs_of(link_set, label=None):
+    p = link_set.pairs
+    if label is not None:
+        p = p[:, link_set.labels == label]
+    return list(zip(p[0].tolist(), p[1].tolist()))
+
+
+def links_of(graph):
+    return {frozenset((u, v)) for u, v in zip(graph.source.tolist(), graph.target.tolist()) if u != v}
+
+
+def test_existence_split_is_leak_free(full_graph):
+    s = split_links(full_graph, "existence", 0.1, 0.2, seed=1)
+    ref = full_graph.to_networkx()  # networkx reference for edge membership
+    train_ref = s.train_graph.to_networkx()
+    links = links_of(full_graph)
+    held = [frozenset(p) for p in pairs_of(s.val, 1) + pairs_of(s.test, 1)]
+    assert len(s.val.labels) // 2 == round(0.1 * len(links)) and len(s.test.labels) // 2 == round(0.2 * len(links))
+    for u, v in map(tuple, held):
+        assert not train_ref.has_edge(u, v) and not train_ref.has_edge(v, u)
+    # train_graph is exactly the full graph minus every edge of a held-out link
+    kept = {(u, v): d["weight"] for u, v, d in ref.edges(data=True) if frozenset((u, v)) not in set(held) or u == v}
+    assert {(u, v): d["weight"] for u, v, d in train_ref.edges(data=True)} == kept
+    assert s.train_graph.num_nodes == full_graph.num_nodes
+    # every link is a positive of exactly one split; positives are edges of the full graph
+    positives = pairs_of(s.train, 1) + pairs_of(s.val, 1) + pairs_of(s.test, 1)
+    assert sorted(map(sorted, map(tuple, map(frozenset, positives)))) == sorted(map(sorted, links))
+    assert all(ref.has_edge(u, v) for u, v in positives)
+    # no operator of train_graph couples a held-out pair
+    lap = magnetic_laplacian(s.train_graph, 0.25, dtype=torch.complex128).to_dense()
+    nl = normalized_laplacian(s.train_graph, dtype=torch.float64).to_dense()
+    for u, v in map(tuple, held):
+        assert lap[u, v] == 0 and lap[v, u] == 0 and nl[u, v] == 0
+
+
+def test_existence_negatives_are_true_non_edges(full_graph):
+    s = split_links(full_graph, "existence", 0.1, 0.1, seed=2)
+    ref = full_graph.to_networkx()
+    negatives = []
+    for part in (s.train, s.val, s.test):
+        assert int(part.labels.sum()) * 2 == len(part)  # balanced
+        assert part.pairs.dtype == torch.int64 and part.pairs.shape == (2, len(part))
+        negatives += pairs_of(part, 0)
+    for u, v in negatives:
+        assert u != v and not ref.has_edge(u, v) and not ref.has_edge(v, u)
+    assert len({frozenset(p) for p in negatives}) == len(negatives)  # never repeated across splits
+
+
+def test_direction_split_labels_and_excludes_reciprocal_links(full_graph):
+    s = split_links(full_graph, "direction", 0.1, 0.1, seed=3)
+    ref = full_graph.to_networkx()
+    train_ref = s.train_graph.to_networkx()
+    reciprocal = {frozenset((u, v)) for u, v in ref.edges() if u != v and ref.has_edge(v, u)}
+    one_way = links_of(full_graph) - reciprocal
+    assert len(reciprocal) == 40
+    seen = []
+    for part in (s.train, s.val, s.test):
+        pos, neg = pairs_of(part, 1), pairs_of(part, 0)
+        assert neg == [(v, u) for u, v in pos]  # (v, u) labelled 0 for each one-way u -> v
+        for u, v in pos:
+            assert ref.has_edge(u, v) and not ref.has_edge(v, u)
+        seen += [frozenset(p) for p in pos]
+    assert sorted(map(sorted, seen)) == sorted(map(sorted, one_way))  # each one-way link once
+    for u, v in pairs_of(s.val, 1) + pairs_of(s.test, 1):
+        assert not train_ref.has_edge(u, v) and not train_ref.has_edge(v, u)
+    for link in reciprocal:  # excluded from the task, kept in the training graph
+        u, v = tuple(link)
+        assert train_ref.has_edge(u, v) and train_ref.has_edge(v, u)
+
+
+def test_link_split_is_seeded(full_graph):
+    a = split_links(full_graph, "existence", 0.1, 0.1, seed=5)
+    b = split_links(full_graph, "existence", 0.1, 0.1, seed=5)
+    c = split_links(full_graph, "existence", 0.1, 0.1, seed=6)
+    assert a.train_graph == b.train_graph and torch.equal(a.test.pairs, b.test.pairs)
+    assert torch.equal(a.train.pairs, b.train.pairs) and not torch.equal(a.test.pairs, c.test.pairs)
+
+
+def test_link_split_of_an_edgeless_graph_is_empty():
+    g = DirectedGraph.from_edges(torch.empty(2, 0, dtype=torch.int64), num_nodes=4)
+    s = split_links(g, "existence", 0.2, 0.2, seed=0)
+    assert len(s.train) == len(s.val) == len(s.test) == 0 and s.train.pairs.shape == (2, 0)
+
+
+@pytest.mark.parametrize(
+    "kwargs,message",
+    [
+        (dict(task="weight"), r"task must be one of \('existence', 'direction'\); got 'weight'"),
+        (dict(val_fraction=0.5, test_fraction=0.5), r"val_fraction \+ test_fraction must be below 1"),
+        (dict(val_fraction=1.0), r"val_fraction must be a fraction in \[0, 1\); got 1.0"),
+        (dict(graph=[[0, 1]]), r"graph must be a DirectedGraph; got list"),
+    ],
+)
+def test_link_split_rejects_bad_input(full_graph, kwargs, message):
+    args = dict(graph=full_graph, task="existence", val_fraction=0.1, test_fraction=0.1, seed=0)
+    args.update(kwargs)
+    with pytest.raises(GraphInputError, match=message):
+        split_links(**args)
+
+
+def test_existence_split_refuses_a_graph_too_dense_for_negatives():
+    complete = DirectedGraph.from_networkx(nx.complete_graph(5))
+    with pytest.raises(GraphInputError, match=r"graph has only 0 non-adjacent node pairs but the existence task needs 10"):
+        split_links(complete, "existence", 0.2, 0.2, seed=0)
