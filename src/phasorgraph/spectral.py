@@ -210,8 +210,12 @@ def dirichlet_energy(x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
     r"""Dirichlet energy :math:`E(x) = \mathrm{Re}\,\mathrm{tr}(x^H L x)` of features x under a Laplacian L.
 
     With the normalized Laplacian this is
-    :math:`\tfrac12 \sum_{u,v} A_s[u,v] \, \| x_u/\sqrt{d_u} - x_v/\sqrt{d_v} \|^2`; it falls to 0
+    :math:`\tfrac12 \sum_{u,v} A_s[u,v] \, \| x_u/\sqrt{d_u} - x_v/\sqrt{d_v} \|^2 + \sum_{d_u = 0} \|x_u\|^2`
+    (an isolated node keeps its diagonal 1, so it adds its own squared norm); with the
+    normalized magnetic Laplacian the difference becomes
+    :math:`x_u/\sqrt{d_u} - e^{i\Theta_{uv}} x_v/\sqrt{d_v}`. On the nodes with edges it falls to 0
     as repeated low-pass filtering makes features constant on each component (over-smoothing).
+    An empty graph (N = 0) has energy 0.
 
     Args:
         x: (N, F) or (N,) real or complex features.
@@ -230,6 +234,8 @@ def dirichlet_energy(x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
     op = _check_operator(op)
     if not op.hermitian:
         raise GraphInputError(f"op must be a Hermitian Laplacian for dirichlet_energy; got kind {op.kind!r}")
+    if op.num_rows == 0 and isinstance(x, torch.Tensor) and x.dim() >= 1 and x.shape[0] == 0:
+        return (x.real if x.is_complex() else x).sum()  # empty graph: 0, still differentiable
     Lx = op.matmul(x)
     prod = x.conj() * Lx if x.is_complex() or Lx.is_complex() else x * Lx
     total = prod.sum()
