@@ -104,7 +104,7 @@ class DiffusionScattering(nn.Module):
             raise GraphInputError(f"in_channels must be an integer >= 1; got {in_channels!r}")
         self.in_channels = int(in_channels)
         self.scales = _check_scales(scales)
-        if isinstance(order, bool) or order not in (1, 2):
+        if isinstance(order, bool) or not isinstance(order, numbers.Integral) or order not in (1, 2):
             raise GraphInputError(f"order must be 1 or 2; got {order!r}")
         self.order = int(order)
         if out_channels is not None and (isinstance(out_channels, bool) or not isinstance(out_channels, numbers.Integral)
