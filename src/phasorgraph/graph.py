@@ -21,8 +21,13 @@ def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
         if t.is_complex() or t.dtype == torch.bool:
             raise GraphInputError(f"{name} must hold integer node ids; got a tensor of dtype {t.dtype}")
         if t.is_floating_point():
-            if not bool(torch.all(torch.isfinite(t))) or not bool(torch.all(t == torch.round(t))):
-                raise GraphInputError(f"{name} must hold integer node ids; got non-integer values of dtype {t.dtype}")
+            bad = ~torch.isfinite(t) | (t != torch.round(t))
+            if bool(bad.any()):
+                k = int(torch.nonzero(bad.reshape(-1))[0])
+                raise GraphInputError(
+                    f"{name} must hold integer node ids; got the non-integer value "
+                    f"{float(t.reshape(-1)[k])} at position {k} (dtype {t.dtype})"
+                )
         t = t.to(device="cpu", dtype=torch.int64)
     else:
         try:
@@ -32,8 +37,13 @@ def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
         if arr.dtype == object or arr.dtype.kind not in "iuf" and arr.size > 0:
             raise GraphInputError(f"{name} must hold integer node ids; got an array of dtype {arr.dtype}")
         if arr.dtype.kind == "f":
-            if not np.all(np.isfinite(arr)) or not np.all(arr == np.round(arr)):
-                raise GraphInputError(f"{name} must hold integer node ids; got non-integer values of dtype {arr.dtype}")
+            bad = ~np.isfinite(arr) | (arr != np.round(arr))
+            if bad.any():
+                k = int(np.flatnonzero(bad)[0])
+                raise GraphInputError(
+                    f"{name} must hold integer node ids; got the non-integer value "
+                    f"{arr.reshape(-1)[k]} at position {k} (dtype {arr.dtype})"
+                )
         t = torch.as_tensor(arr.astype(np.int64, copy=False))
     if t.dim() != 1:
         raise GraphInputError(f"{name} must be 1-D; got shape {tuple(t.shape)}")
@@ -110,8 +120,11 @@ class DirectedGraph:
             )
         w = _as_weight_tensor(weight, src.numel())
         if src.numel() and (int(src.min()) < 0 or int(dst.min()) < 0):
-            which = "source" if int(src.min()) < 0 else "target"
-            raise GraphInputError(f"{which} holds a negative node id; node ids must be >= 0")
+            which, ids = ("source", src) if int(src.min()) < 0 else ("target", dst)
+            k = int(torch.argmin(ids))
+            raise GraphInputError(
+                f"{which} holds node {int(ids[k])} at position {k}; node ids must be integers >= 0"
+            )
         largest = int(torch.maximum(src.max(), dst.max())) if src.numel() else -1
         if num_nodes is None:
             num_nodes = largest + 1
@@ -263,6 +276,13 @@ class DirectedGraph:
             vals_arr = np.asarray(vals, dtype=np.float64)
         except (TypeError, ValueError) as exc:
             raise GraphInputError(f"edge attribute {weight!r} must be a real number on every edge") from exc
+        bad = ~np.isfinite(vals_arr)
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            u, v = list(G.nodes)[rows[k]], list(G.nodes)[cols[k]]
+            raise GraphInputError(
+                f"edge attribute {weight!r} must be finite; edge ({u!r}, {v!r}) has {vals_arr[k]}"
+            )
         return cls(np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64), vals_arr, len(index))
 
     # ------------------------------------------------------------------ adapters out

@@ -200,7 +200,10 @@ def frame_bounds(bank: Sequence | Callable, op: SparseOperator | None = None, *,
     if weight is not None:
         w = np.asarray(torch.as_tensor(weight, dtype=torch.float64))
         if w.shape != (n,) or np.any(w <= 0):
-            raise GraphInputError(f"weight must be a positive vector of shape ({n},)")
+            raise GraphInputError(
+                f"weight must be a positive vector of shape ({n},); got shape {w.shape}"
+                f"{'' if w.shape != (n,) else f' with smallest entry {w.min()}'}"
+            )
         gram = gram / w[:, None] / w[None, :]
     lam = np.linalg.eigvalsh((gram + gram.conj().T) / 2)
     return float(lam[0]), float(lam[-1])
