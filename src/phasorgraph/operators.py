@@ -66,7 +66,13 @@ def _check_graph(graph) -> DirectedGraph:
 
 
 def _check_charge(charge) -> float:
-    if isinstance(charge, torch.Tensor) and charge.numel() == 1 and not charge.requires_grad:
+    if isinstance(charge, torch.Tensor):
+        if charge.requires_grad or charge.numel() != 1 or charge.is_complex():
+            raise GraphInputError(
+                f"charge must be one real number in [0, 0.5] for a fixed operator; got a tensor of "
+                f"shape {tuple(charge.shape)}, dtype {charge.dtype}, requires_grad={charge.requires_grad} "
+                f"(for a learned charge use magnetic_matmul)"
+            )
         charge = float(charge)
     if isinstance(charge, bool) or not isinstance(charge, numbers.Real):
         raise GraphInputError(
