@@ -1,3 +1,674 @@
-"""(being written)"""
+r"""Low-pass and polynomial spectral filters: ChebyshevFilter, RenormalizedFilter, SpectralMultiplier.
 
-__all__: list[str] = []
+All three are ``torch.nn.Module`` layers with ``forward(x, op)`` where ``op`` is a
+:class:`phasorgraph.SparseOperator` (RenormalizedFilter also takes a DirectedGraph). Features
+are ``(N, C_in)`` real or complex; the output is complex when the features, the operator or the
+weights are complex.
+
+Weights are real by default; one real ``W_k`` then acts on the real and the imaginary part of
+complex features alike. ``complex_weights=True`` (ChebyshevFilter) stores fully complex weights
+as real pairs ``(..., 2)`` so that ``module.double()``, ``module.to(dtype)`` and
+DistributedDataParallel treat them like any other float parameter; ``torch.view_as_complex``
+turns them into the complex weights.
+
+No layer registers a sparse tensor as a buffer or parameter: operators built from a graph are
+kept in a small per-layer cache (a plain attribute, dropped on pickling), Fourier bases in a
+module-level weak cache keyed by the operator.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+import weakref
+from collections import OrderedDict
+from typing import Callable, Optional, Sequence
+
+import torch
+from torch import nn
+
+from ..errors import GraphInputError
+from ..graph import DirectedGraph
+from ..operators import renormalized_adjacency
+from ..sparse import SparseOperator
+from ..spectral import DENSE_NODE_LIMIT, fourier_basis, largest_eigenvalue
+
+__all__ = ["ChebyshevFilter", "RenormalizedFilter", "SpectralMultiplier"]
+
+_REAL = (torch.float32, torch.float64)
+_COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
+_REAL_OF = {torch.complex64: torch.float32, torch.complex128: torch.float64,
+            torch.float32: torch.float32, torch.float64: torch.float64}
+
+
+# ---------------------------------------------------------------------- argument checks
+def _check_count(name: str, value, minimum: int = 1) -> int:
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {value!r}")
+    if int(value) < minimum:
+        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {int(value)}")
+    return int(value)
+
+
+def _real_factory_dtype(dtype) -> Optional[torch.dtype]:
+    """The real parameter dtype for factory kwargs (a complex dtype selects its precision)."""
+    if dtype is None:
+        return None
+    if dtype not in _REAL_OF:
+        raise GraphInputError(
+            f"dtype must be torch.float32 or torch.float64 (or complex64/complex128 for that "
+            f"precision); got {dtype}"
+        )
+    return _REAL_OF[dtype]
+
+
+def _check_lmax(lmax, name: str = "lmax") -> Optional[float]:
+    if lmax is None:
+        return None
+    if isinstance(lmax, bool) or not isinstance(lmax, numbers.Real) or not math.isfinite(float(lmax)) \
+            or float(lmax) <= 0:
+        raise GraphInputError(f"{name} must be a finite number > 0 or None (computed from op); got {lmax!r}")
+    return float(lmax)
+
+
+def _check_features(x, num_nodes: int, in_channels: int, precision: torch.dtype, device) -> torch.Tensor:
+    """Validate (N, C_in) features against the graph size, the layer width and precision."""
+    if not isinstance(x, torch.Tensor):
+        raise GraphInputError(f"x must be a torch.Tensor of shape (N, C_in); got {type(x).__name__}")
+    if x.dim() != 2:
+        raise GraphInputError(f"x must have shape (N, C_in) (2-D); got shape {tuple(x.shape)}")
+    if x.shape[0] != num_nodes:
+        raise GraphInputError(
+            f"x must have num_nodes = {num_nodes} rows (shape (N, C_in)); got shape {tuple(x.shape)}"
+        )
+    if x.shape[1] != in_channels:
+        raise GraphInputError(
+            f"x must have in_channels = {in_channels} columns (shape (N, C_in)); got shape {tuple(x.shape)}"
+        )
+    if x.dtype not in _REAL_OF:
+        raise GraphInputError(f"x dtype must be float32, float64, complex64 or complex128; got {x.dtype}")
+    if _REAL_OF[x.dtype] != precision:
+        raise GraphInputError(
+            f"x has dtype {x.dtype} but the layer's parameters are {precision}; use the same "
+            f"precision (layer.to({precision}) or x.to(...))"
+        )
+    if x.device != device:
+        raise GraphInputError(f"x is on {x.device} but the layer's parameters are on {device}; move one of them")
+    return x
+
+
+def _check_operator(op, precision: torch.dtype, device, *, layer: str) -> SparseOperator:
+    if not isinstance(op, SparseOperator):
+        raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
+    if _REAL_OF[op.dtype] != precision:
+        raise GraphInputError(
+            f"op has dtype {op.dtype} but {layer}'s parameters are {precision}; use op.to(...) or "
+            f"layer.to(...) so the precisions match"
+        )
+    if op.device != device:
+        raise GraphInputError(f"op is on {op.device} but {layer}'s parameters are on {device}; move one of them")
+    return op
+
+
+# ---------------------------------------------------------------------- small numerics
+def _bilinear(f: Callable, a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """``f(a, b)`` for a bilinear ``f`` when a and b may differ in being real or complex.
+
+    A real factor never gets cast to complex: ``f(a_re, b) + i f(a_im, b)`` instead.
+    """
+    if a.is_complex() == b.is_complex():
+        return f(a, b)
+    if a.is_complex():
+        return torch.complex(f(a.real, b), f(a.imag, b))
+    return torch.complex(f(a, b.real), f(a, b.imag))
+
+
+def _complex_view(weight: torch.Tensor) -> torch.Tensor:
+    """Complex tensor from real pairs (..., 2)."""
+    return torch.view_as_complex(weight)
+
+
+def init_uniform_(tensor: torch.Tensor, bound: float) -> torch.Tensor:
+    """Real weights: i.i.d. U(-bound, bound), in place (variance bound^2 / 3)."""
+    with torch.no_grad():
+        return tensor.uniform_(-bound, bound)
+
+
+def init_complex_uniform_(pairs: torch.Tensor, bound: float) -> torch.Tensor:
+    r"""Complex weights stored as real pairs (..., 2): real and imaginary parts i.i.d. U(-a, a).
+
+    :math:`a = \mathrm{bound} / \sqrt 2`, so :math:`E|w|^2 = \mathrm{bound}^2 / 3`: the same
+    second moment as the real initialization :func:`init_uniform_` with the same bound.
+    """
+    with torch.no_grad():
+        a = bound / math.sqrt(2.0)
+        return pairs.uniform_(-a, a)
+
+
+def _empty_output(x: torch.Tensor, out_channels: int, dtype: torch.dtype, params) -> torch.Tensor:
+    """The (0, C_out) output of a graph without nodes, still attached to the parameters' graph.
+
+    (A zero-row product is answered here rather than handed to the sparse kernels.)
+    """
+    anchor = sum(p.sum() * 0 for p in params) + x.sum() * 0
+    return torch.zeros(0, out_channels, dtype=dtype, device=x.device) + anchor
+
+
+def _output_dtype(*tensors_or_ops) -> torch.dtype:
+    cplx = any(t.is_complex() if isinstance(t, torch.Tensor) else t.is_complex for t in tensors_or_ops)
+    real = next(t.dtype for t in tensors_or_ops if isinstance(t, torch.Tensor))
+    real = _REAL_OF[real]
+    return _COMPLEX_OF[real] if cplx else real
+
+
+def _chebyshev_sum(x: torch.Tensor, rescaled: Callable[[torch.Tensor], torch.Tensor], order: int,
+                   mix: Callable[[int, torch.Tensor], torch.Tensor]) -> torch.Tensor:
+    r""":math:`\sum_k \mathrm{mix}(k, T_k)` with :math:`T_0 = x`, :math:`T_1 = \tilde L x`,
+    :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}` (Hammond et al. 2011), ``rescaled`` applying
+    :math:`\tilde L`. Terms are accumulated, never concatenated, so memory holds the K + 1
+    terms autograd needs and one output block.
+    """
+    out = mix(0, x)
+    if order == 0:
+        return out
+    prev, cur = x, rescaled(x)
+    out = out + mix(1, cur)
+    for k in range(2, order + 1):
+        prev, cur = cur, 2 * rescaled(cur) - prev
+        out = out + mix(k, cur)
+    return out
+
+
+class _OperatorCache:
+    """A small LRU of operators keyed by graph identity (graphs cannot be weakly referenced).
+
+    Each entry holds its graph, so an id cannot be reused while the entry lives; at most
+    ``maxsize`` entries are kept (oldest dropped first). Plain Python state: never a buffer or
+    parameter, so DistributedDataParallel and ``state_dict`` never see a sparse tensor.
+    """
+
+    def __init__(self, maxsize: int = 8):
+        self.maxsize = maxsize
+        self._items: OrderedDict = OrderedDict()
+
+    def get(self, graph: DirectedGraph, key: tuple, build: Callable[[], SparseOperator]) -> SparseOperator:
+        full = (id(graph),) + tuple(key)
+        hit = self._items.get(full)
+        if hit is not None and hit[0] is graph:
+            self._items.move_to_end(full)
+            return hit[1]
+        op = build()
+        self._items[full] = (graph, op)
+        self._items.move_to_end(full)
+        while len(self._items) > self.maxsize:
+            self._items.popitem(last=False)
+        return op
+
+    def clear(self) -> None:
+        self._items.clear()
+
+    def __len__(self) -> int:
+        return len(self._items)
+
+
+class _CachedOperators:
+    """Mixin: a per-layer operator cache that pickling and deepcopy drop (it is rebuilt lazily)."""
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        state["_operators"] = _OperatorCache()
+        return state
+
+
+# ---------------------------------------------------------------------- Chebyshev
+class ChebyshevFilter(_CachedOperators, nn.Module):
+    r"""Chebyshev polynomial filter :math:`Y = \sum_{k=0}^{K} T_k(\tilde L)\, X W_k + b`.
+
+    :math:`\tilde L = 2 L / \lambda_{max} - I` maps the spectrum :math:`[0, \lambda_{max}]` of a
+    positive semidefinite operator L onto [-1, 1]; the terms follow the recursion
+    :math:`T_0 = X`, :math:`T_1 = \tilde L X`, :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}`
+    (Defferrard et al. 2016; recursion as in Hammond et al. 2011). K sparse products per
+    forward, K more in backward (the Hermitian kernel), memory O(nnz + K N C_in).
+
+    :math:`\lambda_{max}` comes from, in this order: the ``lmax`` argument of ``forward``, the
+    ``lmax`` given to the constructor, or :func:`phasorgraph.spectral.largest_eigenvalue` (computed
+    once and cached on the operator as ``op.lmax``). Pass ``lmax=2`` for normalized Laplacians
+    (their spectrum lies in [0, 2]) to skip the eigenvalue computation. An operator whose largest
+    eigenvalue is 0 (the Laplacian of a graph without edges) is taken with
+    :math:`\lambda_{max} = 1`, i.e. :math:`\tilde L = -I`.
+
+    Args:
+        in_channels: C_in.
+        out_channels: C_out.
+        order: K >= 0, the polynomial degree; the layer has K + 1 weight matrices.
+        bias: learn an additive bias (default True).
+        complex_weights: fully complex W_k and bias (default False: real weights, one W_k for
+            the real and imaginary parts of complex features; a real bias adds to the real part).
+        lmax: optional fixed :math:`\lambda_{max} > 0` (e.g. 2.0 for normalized operators).
+        device, dtype: factory kwargs for the parameters (dtype float32 or float64; complex
+            weights use the matching complex precision).
+
+    Shape:
+        x: (N, C_in) real or complex. op: (N, N) real symmetric or Hermitian SparseOperator.
+        Output: (N, C_out); real when x, op and the weights are all real, complex otherwise.
+
+    Attributes:
+        weight: (K + 1, C_in, C_out) real; with ``complex_weights`` (K + 1, C_in, C_out, 2) real
+            pairs (``torch.view_as_complex(weight)`` is the complex weight).
+            Init: U(-s, s), s = 1 / sqrt((K + 1) C_in); complex: real and imaginary parts
+            U(-s / sqrt 2, s / sqrt 2), the same E|w|^2.
+        bias: (C_out,) (or (C_out, 2) pairs), same distribution; None when ``bias=False``.
+
+    References:
+        M. Defferrard, X. Bresson, P. Vandergheynst, Convolutional neural networks on graphs with
+        fast localized spectral filtering, NeurIPS 2016. D. K. Hammond, P. Vandergheynst,
+        R. Gribonval, Wavelets on graphs via spectral graph theory, ACHA 2011.
+
+    Example:
+        >>> import torch
+        >>> from phasorgraph import DirectedGraph, normalized_laplacian
+        >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+        >>> layer = ChebyshevFilter(4, 8, order=2, lmax=2.0)
+        >>> layer(torch.randn(3, 4), normalized_laplacian(g)).shape
+        torch.Size([3, 8])
+    """
+
+    def __init__(self, in_channels: int, out_channels: int, order: int, bias: bool = True,
+                 complex_weights: bool = False, *, lmax: Optional[float] = None, device=None, dtype=None):
+        super().__init__()
+        self.in_channels = _check_count("in_channels", in_channels)
+        self.out_channels = _check_count("out_channels", out_channels)
+        self.order = _check_count("order", order, minimum=0)
+        self.complex_weights = bool(complex_weights)
+        self.lmax = _check_lmax(lmax)
+        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
+        pair = (2,) if self.complex_weights else ()
+        self.weight = nn.Parameter(torch.empty((self.order + 1, self.in_channels, self.out_channels) + pair, **factory))
+        if bias:
+            self.bias = nn.Parameter(torch.empty((self.out_channels,) + pair, **factory))
+        else:
+            self.register_parameter("bias", None)
+        self._operators = _OperatorCache()
+        self.reset_parameters()
+
+    def reset_parameters(self) -> None:
+        """U(-s, s) with s = 1 / sqrt((order + 1) in_channels) (complex: see the class docstring)."""
+        bound = 1.0 / math.sqrt((self.order + 1) * self.in_channels)
+        init = init_complex_uniform_ if self.complex_weights else init_uniform_
+        with torch.no_grad():
+            init(self.weight, bound)
+            if self.bias is not None:
+                init(self.bias, bound)
+
+    def extra_repr(self) -> str:
+        s = f"{self.in_channels}, {self.out_channels}, order={self.order}"
+        if self.bias is None:
+            s += ", bias=False"
+        if self.complex_weights:
+            s += ", complex_weights=True"
+        if self.lmax is not None:
+            s += f", lmax={self.lmax}"
+        return s
+
+    # the pieces MagneticFilter reuses -----------------------------------------------
+    def _weights(self) -> torch.Tensor:
+        return _complex_view(self.weight) if self.complex_weights else self.weight
+
+    def _bias(self) -> Optional[torch.Tensor]:
+        if self.bias is None:
+            return None
+        return _complex_view(self.bias) if self.complex_weights else self.bias
+
+    def _filter(self, x: torch.Tensor, rescaled: Callable, columns: slice = slice(None)) -> torch.Tensor:
+        """Chebyshev sum with the weight columns ``columns`` (no bias)."""
+        w = self._weights()[:, :, columns]
+        if w.is_complex() and not x.is_complex():
+            x = x.to(w.dtype)
+        return _chebyshev_sum(x, rescaled, self.order, lambda k, t: _bilinear(torch.matmul, t, w[k]))
+
+    def _precision(self) -> torch.dtype:
+        return self.weight.dtype
+
+    def forward(self, x: torch.Tensor, op: SparseOperator, lmax: Optional[float] = None) -> torch.Tensor:
+        """Filter ``x`` (N, C_in) with the operator ``op``; ``lmax`` overrides the stored value."""
+        precision = self._precision()
+        op = _check_operator(op, precision, self.weight.device, layer="ChebyshevFilter")
+        if not op.hermitian:
+            raise GraphInputError(
+                f"op must be real symmetric or Hermitian for ChebyshevFilter (its lmax and cheap "
+                f"backward rely on it); got kind {op.kind!r} with hermitian=False"
+            )
+        x = _check_features(x, op.num_rows, self.in_channels, precision, self.weight.device)
+        lam = _check_lmax(lmax, "lmax (forward)")
+        if lam is None:
+            lam = self.lmax
+        if lam is None:
+            lam = largest_eigenvalue(op)
+            if lam < -1e-12:
+                raise GraphInputError(
+                    f"op has largest eigenvalue {lam:.3g} < 0; ChebyshevFilter expects a positive "
+                    f"semidefinite operator (a Laplacian) or an explicit lmax > 0"
+                )
+            if lam <= 1e-12:
+                lam = 1.0  # the zero operator: L~ = -I whatever lmax > 0 is used
+        scale = 2.0 / lam
+        if op.num_rows == 0:
+            return _empty_output(x, self.out_channels, _output_dtype(x, op, self._weights()), self.parameters())
+
+        def rescaled(t):
+            return scale * (op @ t) - t
+
+        out = self._filter(x, rescaled)
+        b = self._bias()
+        return out if b is None else out + b
+
+
+# ---------------------------------------------------------------------- renormalized
+class RenormalizedFilter(_CachedOperators, nn.Module):
+    r"""One renormalized-adjacency product and a linear map, :math:`Y = \hat A X W + b`.
+
+    :math:`\hat A = \tilde D^{-1/2} (A_s + I) \tilde D^{-1/2}` (Kipf & Welling 2017), from
+    :func:`phasorgraph.operators.renormalized_adjacency`. Given a DirectedGraph, the operator is
+    built once and cached per graph (a few graphs at a time); given a SparseOperator it is used
+    as is. The operator must be real: for complex (magnetic) operators use
+    :class:`ChebyshevFilter` or :class:`~phasorgraph.nn.MagneticFilter`. The product runs on the
+    narrower side (``X W`` first when C_out < C_in).
+
+    Args:
+        in_channels: C_in.
+        out_channels: C_out.
+        bias: learn an additive bias (default True).
+        device, dtype: factory kwargs (float32 or float64).
+
+    Shape:
+        x: (N, C_in) real or complex (real weights act on both parts). Output: (N, C_out).
+
+    Attributes:
+        weight: (C_in, C_out), U(-s, s) with s = 1 / sqrt(C_in).
+        bias: (C_out,), same distribution; None when ``bias=False``.
+
+    References:
+        T. N. Kipf and M. Welling, Semi-supervised classification with graph convolutional
+        networks, ICLR 2017.
+
+    Example:
+        >>> import torch
+        >>> from phasorgraph import DirectedGraph
+        >>> g = DirectedGraph.from_edges([[0, 1], [1, 2]])
+        >>> RenormalizedFilter(4, 2)(torch.randn(3, 4), g).shape
+        torch.Size([3, 2])
+    """
+
+    def __init__(self, in_channels: int, out_channels: int, bias: bool = True, *, device=None, dtype=None):
+        super().__init__()
+        self.in_channels = _check_count("in_channels", in_channels)
+        self.out_channels = _check_count("out_channels", out_channels)
+        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
+        self.weight = nn.Parameter(torch.empty(self.in_channels, self.out_channels, **factory))
+        if bias:
+            self.bias = nn.Parameter(torch.empty(self.out_channels, **factory))
+        else:
+            self.register_parameter("bias", None)
+        self._operators = _OperatorCache()
+        self.reset_parameters()
+
+    def reset_parameters(self) -> None:
+        """U(-s, s) with s = 1 / sqrt(in_channels) for weight and bias."""
+        bound = 1.0 / math.sqrt(self.in_channels)
+        with torch.no_grad():
+            init_uniform_(self.weight, bound)
+            if self.bias is not None:
+                init_uniform_(self.bias, bound)
+
+    def extra_repr(self) -> str:
+        return f"{self.in_channels}, {self.out_channels}" + (", bias=False" if self.bias is None else "")
+
+    def _operator(self, op_or_graph) -> SparseOperator:
+        precision, device = self.weight.dtype, self.weight.device
+        if isinstance(op_or_graph, DirectedGraph):
+            graph = op_or_graph
+            return self._operators.get(
+                graph, ("renormalized_adjacency", precision, str(device)),
+                lambda: renormalized_adjacency(graph, dtype=precision).to(device=device))
+        if isinstance(op_or_graph, SparseOperator) and op_or_graph.is_complex:
+            raise GraphInputError(
+                f"op must be real for RenormalizedFilter (the renormalized adjacency); got "
+                f"{op_or_graph.dtype} (kind {op_or_graph.kind!r}); use ChebyshevFilter or "
+                f"MagneticFilter for complex operators"
+            )
+        if not isinstance(op_or_graph, SparseOperator):
+            raise GraphInputError(
+                f"op_or_graph must be a SparseOperator or a DirectedGraph; got {type(op_or_graph).__name__}"
+            )
+        return _check_operator(op_or_graph, precision, device, layer="RenormalizedFilter")
+
+    def forward(self, x: torch.Tensor, op_or_graph) -> torch.Tensor:
+        """``op @ x @ weight + bias``; ``op_or_graph`` a real SparseOperator or a DirectedGraph."""
+        op = self._operator(op_or_graph)
+        x = _check_features(x, op.num_rows, self.in_channels, self.weight.dtype, self.weight.device)
+        if op.num_rows == 0:
+            return _empty_output(x, self.out_channels, _output_dtype(x, self.weight), self.parameters())
+        if self.out_channels < self.in_channels:
+            out = op @ _bilinear(torch.matmul, x, self.weight)
+        else:
+            out = _bilinear(torch.matmul, op @ x, self.weight)
+        return out if self.bias is None else out + self.bias
+
+
+# ---------------------------------------------------------------------- spectral multiplier
+#: Fourier bases per operator (weak keys: an entry goes when its operator goes)
+_FOURIER_CACHE: "weakref.WeakKeyDictionary[SparseOperator, dict]" = weakref.WeakKeyDictionary()
+
+PER_EIGENVALUE = "per_eigenvalue"
+
+
+def _cached_basis(op: SparseOperator, dtype: torch.dtype, device, max_nodes: int):
+    """(eigenvalues float64 CPU, eigenvectors in ``dtype`` on ``device``), one eigh per operator."""
+    entry = _FOURIER_CACHE.get(op)
+    if entry is None:
+        lam, U = fourier_basis(op, max_nodes=max_nodes)
+        entry = {"lam": lam, "U": U}
+        _FOURIER_CACHE[op] = entry
+    key = (dtype, str(device))
+    if key not in entry:
+        entry[key] = entry["U"].to(device=device, dtype=dtype)
+    return entry["lam"], entry[key]
+
+
+def _hat_basis(lam: torch.Tensor, knots: torch.Tensor) -> torch.Tensor:
+    """(N, K) piecewise-linear interpolation weights: g(lam_n) = sum_k B[n, k] g_k (np.interp)."""
+    k = knots.numel()
+    lam = lam.clamp(float(knots[0]), float(knots[-1]))
+    right = torch.searchsorted(knots, lam, right=True).clamp(1, k - 1)
+    left = right - 1
+    t = (lam - knots[left]) / (knots[right] - knots[left])
+    B = torch.zeros(lam.numel(), k, dtype=lam.dtype)
+    rows = torch.arange(lam.numel())
+    B[rows, left] = 1 - t
+    B[rows, right] += t
+    return B
+
+
+class SpectralMultiplier(nn.Module):
+    r"""Filter in the Fourier basis: :math:`Y = U\, [\,g_{io}(\lambda) \odot (U^H X)\,]\, + b`.
+
+    With :math:`L = U \operatorname{diag}(\lambda) U^H` the eigendecomposition of a Hermitian
+    operator, output channel o is
+    :math:`y_o = \sum_i U \operatorname{diag}(g_{io}(\lambda)) U^H x_i` (Bruna et al. 2014).
+
+    * Interpolated (``knots`` an int or a sequence): each multiplier :math:`g_{io}` is the
+      piecewise-linear interpolant of K learned values at fixed knot positions over
+      ``interval`` (``numpy.interp`` semantics). The knots live on the eigenvalue axis, not on
+      eigenvalue indices, so one layer applies to graphs of any size.
+    * Free (``knots="per_eigenvalue"``, ``num_nodes=N``): one learned value per eigenvalue, in
+      ascending order, for one fixed graph of N nodes. With repeated eigenvalues this variant
+      depends on the eigenbasis numpy returns; the interpolated one does not.
+
+    Small graphs only: the Fourier basis is a dense N x N matrix from ``numpy.linalg.eigh``
+    (O(N^3) once per operator, cached per operator object; O(N^2 C) per forward). Operators
+    with more than ``max_nodes`` nodes are refused with a clear error; use ChebyshevFilter on
+    large graphs.
+
+    Args:
+        in_channels: C_in.
+        out_channels: C_out.
+        knots: int K >= 2 (K evenly spaced knots over ``interval``), a strictly increasing
+            sequence of >= 2 knot positions, or ``"per_eigenvalue"``.
+        interval: (low, high) eigenvalue range covered by the knots (default (0, 2), the
+            spectrum of normalized Laplacians). Eigenvalues outside it (beyond a 1e-6 relative
+            tolerance) are refused.
+        num_nodes: N, required for (and only used by) ``knots="per_eigenvalue"``.
+        bias: learn an additive bias (default True).
+        max_nodes: largest accepted N (default ``phasorgraph.spectral.DENSE_NODE_LIMIT`` = 4096).
+        device, dtype: factory kwargs (float32 or float64).
+
+    Shape:
+        x: (N, C_in) real or complex; op: Hermitian (N, N) SparseOperator. Output (N, C_out),
+        complex when x or op is complex.
+
+    Attributes:
+        weight: (K, C_in, C_out) multiplier values at the knots (or (N, C_in, C_out) per
+            eigenvalue), U(-s, s) with s = 1 / sqrt(C_in).
+        bias: (C_out,), same distribution; None when ``bias=False``.
+
+    References:
+        J. Bruna, W. Zaremba, A. Szlam, Y. LeCun, Spectral networks and locally connected
+        networks on graphs, ICLR 2014.
+
+    Example:
+        >>> import torch
+        >>> from phasorgraph import DirectedGraph, normalized_laplacian
+        >>> op = normalized_laplacian(DirectedGraph.from_edges([[0, 1, 2], [1, 2, 3]]))
+        >>> SpectralMultiplier(2, 3, knots=5)(torch.randn(4, 2), op).shape
+        torch.Size([4, 3])
+    """
+
+    def __init__(self, in_channels: int, out_channels: int, knots, *, interval: Sequence[float] = (0.0, 2.0),
+                 num_nodes: Optional[int] = None, bias: bool = True, max_nodes: int = DENSE_NODE_LIMIT,
+                 device=None, dtype=None):
+        super().__init__()
+        self.in_channels = _check_count("in_channels", in_channels)
+        self.out_channels = _check_count("out_channels", out_channels)
+        self.max_nodes = _check_count("max_nodes", max_nodes)
+        try:
+            low, high = (float(v) for v in interval)
+        except (TypeError, ValueError):
+            raise GraphInputError(f"interval must be a pair (low, high) of numbers; got {interval!r}") from None
+        if not (math.isfinite(low) and math.isfinite(high) and low < high):
+            raise GraphInputError(f"interval must be a finite pair with low < high; got {interval!r}")
+        self.interval = (low, high)
+        if isinstance(knots, str):
+            if knots != PER_EIGENVALUE:
+                raise GraphInputError(
+                    f"knots must be an int >= 2, a strictly increasing sequence of positions, or "
+                    f"{PER_EIGENVALUE!r}; got {knots!r}"
+                )
+            if num_nodes is None:
+                raise GraphInputError(f"num_nodes is required with knots={PER_EIGENVALUE!r} (one value per eigenvalue)")
+            self.num_nodes = _check_count("num_nodes", num_nodes)
+            if self.num_nodes > self.max_nodes:
+                raise GraphInputError(
+                    f"num_nodes = {self.num_nodes} exceeds max_nodes = {self.max_nodes}: SpectralMultiplier "
+                    f"builds a dense N x N Fourier basis and is for small graphs only"
+                )
+            self.knots = PER_EIGENVALUE
+            size = self.num_nodes
+        else:
+            if isinstance(knots, numbers.Integral) and not isinstance(knots, bool):
+                count = _check_count("knots", knots, minimum=2)
+                positions = tuple(low + (high - low) * j / (count - 1) for j in range(count))
+            else:
+                try:
+                    positions = tuple(float(v) for v in knots)
+                except (TypeError, ValueError):
+                    raise GraphInputError(
+                        f"knots must be an int >= 2, a strictly increasing sequence of positions, or "
+                        f"{PER_EIGENVALUE!r}; got {knots!r}"
+                    ) from None
+                if len(positions) < 2 or any(not b > a for a, b in zip(positions, positions[1:])) \
+                        or not all(math.isfinite(p) for p in positions):
+                    raise GraphInputError(f"knots must hold >= 2 finite, strictly increasing positions; got {knots!r}")
+                self.interval = (positions[0], positions[-1])
+            self.knots = positions
+            self.num_nodes = None
+            size = len(positions)
+        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
+        self.weight = nn.Parameter(torch.empty(size, self.in_channels, self.out_channels, **factory))
+        if bias:
+            self.bias = nn.Parameter(torch.empty(self.out_channels, **factory))
+        else:
+            self.register_parameter("bias", None)
+        self.reset_parameters()
+
+    def reset_parameters(self) -> None:
+        """U(-s, s) with s = 1 / sqrt(in_channels) for the multiplier values and the bias."""
+        bound = 1.0 / math.sqrt(self.in_channels)
+        with torch.no_grad():
+            init_uniform_(self.weight, bound)
+            if self.bias is not None:
+                init_uniform_(self.bias, bound)
+
+    @property
+    def per_eigenvalue(self) -> bool:
+        return self.knots == PER_EIGENVALUE
+
+    def extra_repr(self) -> str:
+        if self.per_eigenvalue:
+            s = f"{self.in_channels}, {self.out_channels}, knots={PER_EIGENVALUE!r}, num_nodes={self.num_nodes}"
+        else:
+            s = f"{self.in_channels}, {self.out_channels}, knots={len(self.knots)}, interval={self.interval}"
+        if self.bias is None:
+            s += ", bias=False"
+        if self.max_nodes != DENSE_NODE_LIMIT:
+            s += f", max_nodes={self.max_nodes}"
+        return s
+
+    def multipliers(self, eigenvalues: torch.Tensor) -> torch.Tensor:
+        """The multipliers g_io at the given eigenvalues, shape (N, C_in, C_out) (interpolated only)."""
+        if self.per_eigenvalue:
+            return self.weight
+        knots = torch.tensor(self.knots, dtype=torch.float64)
+        B = _hat_basis(torch.as_tensor(eigenvalues, dtype=torch.float64).cpu(), knots)
+        B = B.to(device=self.weight.device, dtype=self.weight.dtype)
+        return torch.einsum("nk,kio->nio", B, self.weight)
+
+    def forward(self, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
+        precision, device = self.weight.dtype, self.weight.device
+        op = _check_operator(op, precision, device, layer="SpectralMultiplier")
+        if not op.hermitian:
+            raise GraphInputError(f"op must be Hermitian for SpectralMultiplier; got kind {op.kind!r} with hermitian=False")
+        n = op.num_rows
+        if n > self.max_nodes:
+            raise GraphInputError(
+                f"op has {n} nodes but SpectralMultiplier builds a dense N x N Fourier basis and accepts "
+                f"at most max_nodes = {self.max_nodes}; use ChebyshevFilter on large graphs"
+            )
+        if self.per_eigenvalue and n != self.num_nodes:
+            raise GraphInputError(
+                f"op has {n} nodes but this per-eigenvalue SpectralMultiplier was built for "
+                f"num_nodes = {self.num_nodes}; use interpolated knots for graphs of other sizes"
+            )
+        x = _check_features(x, n, self.in_channels, precision, device)
+        if n == 0:
+            return _empty_output(x, self.out_channels, _output_dtype(x, op, self.weight), self.parameters())
+        basis_dtype = _COMPLEX_OF[precision] if op.is_complex else precision
+        lam, U = _cached_basis(op, basis_dtype, device, self.max_nodes)
+        if not self.per_eigenvalue and n:
+            low, high = self.interval
+            tol = 1e-6 * max(1.0, abs(low), abs(high))
+            if float(lam[0]) < low - tol or float(lam[-1]) > high + tol:
+                raise GraphInputError(
+                    f"op has eigenvalues in [{float(lam[0]):.4g}, {float(lam[-1]):.4g}] but the knots cover "
+                    f"interval = ({low}, {high}); build the layer with a wider interval"
+                )
+        Uh = U.conj().T if U.is_complex() else U.T
+        xh = _bilinear(torch.matmul, Uh, x)                       # (N, C_in)
+        if self.per_eigenvalue:
+            yh = _bilinear(lambda a, b: torch.bmm(a.unsqueeze(1), b).squeeze(1), xh, self.weight)
+        else:
+            knots = torch.tensor(self.knots, dtype=torch.float64)
+            B = _hat_basis(lam, knots).to(device=device, dtype=precision)     # (N, K)
+            z = (B.unsqueeze(2) * xh.unsqueeze(1)).reshape(n, -1)              # (N, K C_in)
+            yh = _bilinear(torch.matmul, z, self.weight.reshape(-1, self.out_channels))
+        out = _bilinear(torch.matmul, U, yh)
+        return out if self.bias is None else out + self.bias
