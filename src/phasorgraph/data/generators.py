@@ -210,37 +210,34 @@ def _sample_avoiding(rng: np.random.Generator, m: int, k: int, taken: np.ndarray
     return ranks + np.searchsorted(shifted, ranks, side="right")
 
 
-def _join(parts: list) -> np.ndarray:
-    if not parts:
-        return np.empty(0, dtype=np.int64)
-    return parts[0] if len(parts) == 1 else np.concatenate(parts)
-
-
 def _block_edges(rng, sizes: np.ndarray, prob: np.ndarray, direction: np.ndarray):
-    """Edges of the block model: (source, target, low, high), low < high the unordered pair."""
+    """Oriented edges (source, target) of the block model, written once into preallocated arrays."""
     offsets = np.concatenate([[0], np.cumsum(sizes)])
-    blocks = sizes.size
-    srcs, dsts, lows, highs = [], [], [], []
-    for a in range(blocks):  # loop over block pairs only; all edge work is vectorized
-        for b in range(a, blocks):
-            na, nb = int(sizes[a]), int(sizes[b])
-            m = _num_pairs(na) if a == b else na * nb
-            if m == 0 or prob[a, b] == 0:
-                continue
-            k = int(rng.binomial(m, prob[a, b]))
-            idx = _sample_distinct(rng, m, k)
-            if a == b:
-                lo, hi = _pair_from_index(idx, na)
-                lo += offsets[a]
-                hi += offsets[a]
-            else:
-                lo, hi = np.divmod(idx, nb)
-                lo += offsets[a]
-                hi += offsets[b]
-            forward = rng.random(k) < direction[a, b]
-            srcs.append(np.where(forward, lo, hi)); dsts.append(np.where(forward, hi, lo))
-            lows.append(lo); highs.append(hi)
-    return _join(srcs), _join(dsts), _join(lows), _join(highs)
+    a_ids, b_ids = np.triu_indices(sizes.size)  # block pairs a <= b
+    na, nb = sizes[a_ids], sizes[b_ids]
+    trials = np.where(a_ids == b_ids, na * (na - 1) // 2, na * nb)
+    counts = rng.binomial(trials, prob[a_ids, b_ids])  # edge count of every block pair at once
+    total = int(counts.sum())
+    src = np.empty(total, dtype=np.int64)
+    dst = np.empty(total, dtype=np.int64)
+    pos = 0
+    for a, b, m, k in zip(a_ids.tolist(), b_ids.tolist(), trials.tolist(), counts.tolist()):
+        if k == 0:  # loop over block pairs only; all edge work is vectorized
+            continue
+        idx = _sample_distinct(rng, m, k)
+        if a == b:
+            lo, hi = _pair_from_index(idx, int(sizes[a]))
+            lo += offsets[a]
+            hi += offsets[a]
+        else:
+            lo, hi = np.divmod(idx, int(sizes[b]))
+            lo += offsets[a]
+            hi += offsets[b]
+        forward = rng.random(k) < direction[a, b]
+        np.copyto(src[pos:pos + k], np.where(forward, lo, hi))
+        np.copyto(dst[pos:pos + k], np.where(forward, hi, lo))
+        pos += k
+    return src, dst
 
 
 # ---------------------------------------------------------------------- block model
@@ -288,17 +285,16 @@ def directed_block_model(sizes: Sequence[int], density: Any, flow: Any, noise: f
         raise GraphInputError(f"noise must be a finite fraction >= 0 of the edge count; got {noise!r}")
     rng = _rng(seed)
     n = int(sizes_arr.sum())
-    src, dst, lo, hi = _block_edges(rng, sizes_arr, prob, direction)
-    extra = int(round(float(noise) * lo.size))
+    src, dst = _block_edges(rng, sizes_arr, prob, direction)
+    extra = int(round(float(noise) * src.size))
     if extra:
-        free = _num_pairs(n) - lo.size
+        free = _num_pairs(n) - src.size
         if extra > free:
             raise GraphInputError(
                 f"noise asks for {extra} extra edges but only {free} node pairs are not yet joined; "
                 f"lower noise (accepted: noise * edges <= free pairs)"
             )
-        taken = np.sort(_index_from_pair(lo, hi, n))
-        del lo, hi
+        taken = np.sort(_index_from_pair(src, dst, n))
         nlo, nhi = _pair_from_index(_sample_avoiding(rng, _num_pairs(n), extra, taken), n)
         flip = rng.random(extra) < 0.5
         src = np.concatenate([src, np.where(flip, nhi, nlo)])
