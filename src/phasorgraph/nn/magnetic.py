@@ -130,7 +130,7 @@ class MagneticFilter(_CachedOperators, nn.Module):
         >>> y = layer(torch.randn(3, 2), g); y.shape, y.dtype
         (torch.Size([3, 4]), torch.complex64)
         >>> learned = MagneticFilter(2, 4, order=1, charge=0.02, learn_charge=True)
-        >>> round(float(learned.charge), 6)
+        >>> round(float(learned.charge.detach()), 6)
         0.02
     """
 

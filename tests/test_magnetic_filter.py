@@ -1,0 +1,210 @@
+"""MagneticFilter: generic spec checks, the q = 0 reduction, charge maps, banks, caching, bad input.
+
+References: the dense normalized magnetic Laplacian I - D^-1/2 (As * exp(i 2 pi q (A - A^T)))
+D^-1/2 written in NumPy (Zhang et al. 2021; DESIGN.md) with numpy.linalg.eigh and
+numpy.polynomial.chebyshev.chebval on its eigenvalues (tests/layer_specs.py).
+"""
+
+import os
+
+import pytest
+import torch
+
+from layer_specs import (
+    GENERIC_CHECKS,
+    features,
+    reference_graph,
+    single_thread,  # noqa: F401 (fixture)
+    specs_for,
+)
+from phasorgraph import DirectedGraph, GraphInputError, normalized_laplacian
+from phasorgraph.nn import ChebyshevFilter, MagneticFilter
+from phasorgraph.nn import magnetic as magnetic_module
+
+pytestmark = pytest.mark.usefixtures("single_thread")
+
+
+@pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)
+@pytest.mark.parametrize("spec", specs_for("magnetic"), ids=str)
+def test_generic(spec, check):
+    check(spec)
+
+
+# ---------------------------------------------------------------------- reductions and identities
+@pytest.mark.parametrize("learn", [False, True])
+def test_charge_zero_equals_chebyshev_on_the_normalized_laplacian_of_As(learn):
+    # q = 0: the magnetic Laplacian is the normalized Laplacian of As (DESIGN.md), lmax = 2
+    g, _ = reference_graph()
+    torch.manual_seed(0)
+    mag = MagneticFilter(3, 4, order=3, charge=0.0, dtype=torch.float64)
+    cheb = ChebyshevFilter(3, 4, order=3, lmax=2.0, dtype=torch.float64)
+    cheb.load_state_dict(mag.state_dict())
+    x = features(7, 3, torch.float64, False)
+    y = mag(x, g)
+    torch.testing.assert_close(y.real, cheb(x, normalized_laplacian(g, dtype=torch.float64)))
+    torch.testing.assert_close(y.imag, torch.zeros_like(y.imag))
+    if learn:
+        # a learned charge driven to (numerically) zero reaches the same operator
+        lm = MagneticFilter(3, 4, order=3, charge=0.1, learn_charge=True, dtype=torch.float64)
+        lm.load_state_dict({**mag.state_dict(), "charge_logit": torch.tensor([-80.0], dtype=torch.float64)})
+        torch.testing.assert_close(lm(x, g), y)
+
+
+def test_learned_charge_forward_matches_the_fixed_charge_operator():
+    g, _ = reference_graph()
+    torch.manual_seed(0)
+    fixed = MagneticFilter(2, 4, order=3, charge=0.17, dtype=torch.float64)
+    learned = MagneticFilter(2, 4, order=3, charge=0.17, learn_charge=True, dtype=torch.float64)
+    learned.load_state_dict({**fixed.state_dict(), "charge_logit": learned.charge_logit.detach()})
+    x = features(7, 2, torch.float64, True)
+    torch.testing.assert_close(learned(x, g), fixed(x, g))
+
+
+def test_bank_channel_groups_follow_the_documented_split():
+    # charge list [q0, q1, q2] with C_out = 6: columns 2g, 2g + 1 belong to charge g
+    g, _ = reference_graph()
+    torch.manual_seed(0)
+    bank = MagneticFilter(3, 6, order=2, charge=[0.0, 0.1, 0.4], dtype=torch.float64)
+    x = features(7, 3, torch.float64, False)
+    y = bank(x, g)
+    for k, q in enumerate([0.0, 0.1, 0.4]):
+        single = MagneticFilter(3, 2, order=2, charge=q, dtype=torch.float64)
+        single.load_state_dict({"weight": bank.weight[:, :, 2 * k:2 * k + 2], "bias": bank.bias[2 * k:2 * k + 2]})
+        torch.testing.assert_close(y[:, 2 * k:2 * k + 2], single(x, g))
+
+
+def test_reversing_every_edge_conjugates_the_output_for_real_inputs_and_weights():
+    # L(q) of the reversed graph is conj(L(q)) (DESIGN.md); real x, W, b then give conj(Y)
+    g, _ = reference_graph()
+    layer = MagneticFilter(3, 4, order=3, charge=0.3, dtype=torch.float64)
+    x = features(7, 3, torch.float64, False)
+    torch.testing.assert_close(layer(x, g.reverse()), layer(x, g).conj().resolve_conj())
+
+
+def test_output_dtypes_and_real_input_as_complex():
+    g, _ = reference_graph()
+    layer = MagneticFilter(3, 2, order=2, charge=0.2)
+    x = features(7, 3, torch.float32, False)
+    y = layer(x, g)
+    assert y.dtype == torch.complex64
+    torch.testing.assert_close(y, layer(torch.complex(x, torch.zeros_like(x)), g))
+    assert layer.double()(x.double(), g).dtype == torch.complex128
+
+
+# ---------------------------------------------------------------------- the charge attribute and map
+def test_charge_attribute_shapes_and_values():
+    assert MagneticFilter(2, 2, 1, charge=0.3).charge.shape == ()
+    assert float(MagneticFilter(2, 2, 1, charge=0.3).charge) == pytest.approx(0.3)
+    bank = MagneticFilter(2, 4, 1, charge=[0.1, 0.2])
+    torch.testing.assert_close(bank.charge, torch.tensor([0.1, 0.2]))
+    learned = MagneticFilter(2, 4, 1, charge=[0.02, 0.45], learn_charge=True, dtype=torch.float64)
+    torch.testing.assert_close(learned.charge.detach(), torch.tensor([0.02, 0.45], dtype=torch.float64))
+    assert learned.charge.requires_grad
+
+
+def test_charge_map_stays_in_range_and_has_no_flat_spot_at_the_start():
+    layer = MagneticFilter(1, 1, 0, charge=0.02, learn_charge=True, dtype=torch.float64)
+    q = layer.charge
+    q.backward()
+    # closed form: q = sigmoid(u) / 2 gives dq/du = q (1 - 2 q), far from 0 at q = 0.02
+    assert float(layer.charge_logit.grad) == pytest.approx(0.02 * (1 - 0.04), rel=1e-10)
+    with torch.no_grad():
+        layer.charge_logit.fill_(1e4)
+    assert 0.0 <= float(layer.charge.detach()) <= 0.5
+    with torch.no_grad():
+        layer.charge_logit.fill_(-1e4)
+    assert 0.0 <= float(layer.charge.detach()) <= 0.5
+
+
+def test_loss_gradient_reaches_the_learned_charge():
+    g, _ = reference_graph()
+    layer = MagneticFilter(1, 2, order=2, charge=0.02, learn_charge=True, dtype=torch.float64)
+    layer(torch.ones(7, 1, dtype=torch.float64), g).imag.pow(2).sum().backward()
+    assert float(layer.charge_logit.grad.abs()) > 0
+
+
+def test_reset_parameters_restores_the_start_charge():
+    layer = MagneticFilter(2, 2, 1, charge=0.07, learn_charge=True)
+    with torch.no_grad():
+        layer.charge_logit.fill_(3.0)
+    layer.reset_parameters()
+    assert float(layer.charge.detach()) == pytest.approx(0.07, rel=1e-5)
+
+
+# ---------------------------------------------------------------------- caching and wrapping
+def test_fixed_charge_builds_its_operator_once_per_graph(monkeypatch):
+    calls = []
+    real = magnetic_module.magnetic_laplacian
+    monkeypatch.setattr(magnetic_module, "magnetic_laplacian", lambda *a, **k: calls.append(1) or real(*a, **k))
+    g, _ = reference_graph()
+    layer = MagneticFilter(3, 4, order=2, charge=[0.1, 0.25])
+    x = features(7, 3, torch.float32, False)
+    layer(x, g), layer(x, g)
+    assert len(calls) == 2                       # one per charge, then cached
+    g2 = DirectedGraph.from_edges([[0, 1], [1, 2]])
+    layer(features(3, 3, torch.float32, False), g2)
+    assert len(calls) == 4
+    assert list(layer.buffers()) == []           # operators are never buffers
+    assert len(layer._operators) <= layer._operators.maxsize
+
+
+def test_ddp_can_wrap_the_layer(tmp_path):
+    # DistributedDataParallel broadcasts parameters and buffers: none may be sparse
+    import torch.distributed as dist
+    from torch.nn.parallel import DistributedDataParallel
+
+    if not dist.is_available():
+        pytest.skip("torch.distributed is not built in this torch")
+    dist.init_process_group("gloo", init_method=f"file://{os.path.join(tmp_path, 'store')}", rank=0, world_size=1)
+    try:
+        g, _ = reference_graph()
+        layer = MagneticFilter(3, 4, order=2, charge=0.02, learn_charge=True)
+        wrapped = DistributedDataParallel(layer)
+        wrapped(features(7, 3, torch.float32, False), g).abs().sum().backward()
+        assert layer.charge_logit.grad is not None
+        fixed = DistributedDataParallel(MagneticFilter(3, 4, order=2, charge=0.25))
+        fixed(features(7, 3, torch.float32, False), g).abs().sum().backward()
+    finally:
+        dist.destroy_process_group()
+
+
+def test_graph_without_nodes_or_edges_is_nan_free():
+    empty = DirectedGraph.from_edges([[], []], num_nodes=0)
+    assert MagneticFilter(2, 2, 2)(torch.zeros(0, 2), empty).shape == (0, 2)
+    lonely = DirectedGraph.from_edges([[], []], num_nodes=3)
+    for learn in (False, True):
+        y = MagneticFilter(2, 2, 2, charge=0.1, learn_charge=learn)(torch.ones(3, 2), lonely)
+        assert torch.isfinite(torch.view_as_real(y)).all()
+
+
+# ---------------------------------------------------------------------- bad input
+@pytest.mark.parametrize("charge", [-0.1, 0.6, [0.1, 0.7]])
+def test_charge_outside_the_range(charge):
+    with pytest.raises(GraphInputError, match=r"charge must lie in \[0, 0.5\]; got"):
+        MagneticFilter(2, 2, 1, charge=charge)
+
+
+def test_other_bad_charges():
+    with pytest.raises(GraphInputError, match=r"a learned charge must start inside the open interval \(0, 0.5\).*got 0.0"):
+        MagneticFilter(2, 2, 1, charge=0.0, learn_charge=True)
+    with pytest.raises(GraphInputError, match=r"got an empty list"):
+        MagneticFilter(2, 2, 1, charge=[])
+    with pytest.raises(GraphInputError, match=r"charge must hold real numbers in \[0, 0.5\]; got 'a'"):
+        MagneticFilter(2, 2, 1, charge=["a"])
+    with pytest.raises(GraphInputError, match=r"out_channels must be a multiple of the number of charges \(2\).*got out_channels = 3"):
+        MagneticFilter(2, 3, 1, charge=[0.1, 0.2])
+
+
+def test_other_bad_arguments():
+    g, _ = reference_graph()
+    with pytest.raises(GraphInputError, match=r"order must be an integer >= 0; got -2"):
+        MagneticFilter(2, 2, order=-2)
+    with pytest.raises(GraphInputError, match=r"phase must be one of \('difference', 'sign'\); got 'angle'"):
+        MagneticFilter(2, 2, 1, phase="angle")
+    layer = MagneticFilter(3, 2, 1)
+    with pytest.raises(GraphInputError, match=r"x must have num_nodes = 7 rows .*got shape \(8, 3\)"):
+        layer(features(8, 3, torch.float32, False), g)
+    with pytest.raises(GraphInputError, match=r"graph must be a DirectedGraph .*got SparseOperator"):
+        layer(features(7, 3, torch.float32, False), normalized_laplacian(g))
+    with pytest.raises(GraphInputError, match=r"x has dtype torch.complex128 but the layer's parameters are torch.float32"):
+        layer(features(7, 3, torch.float64, True), g)
