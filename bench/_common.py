@@ -29,6 +29,7 @@ from typing import Callable, Iterable, Mapping, Optional, Sequence
 __all__ = [
     "median_time",
     "time_stats",
+    "interleaved_times",
     "print_table",
     "write_results",
     "machine_info",
@@ -73,6 +74,39 @@ def median_time(fn: Callable[[], object], repeats: int = 5, warmup: int = 1,
                 max_seconds: Optional[float] = None) -> float:
     """Median wall time of ``fn()`` in seconds over ``repeats`` timed runs after ``warmup`` runs."""
     return time_stats(fn, repeats=repeats, warmup=warmup, max_seconds=max_seconds)["median"]
+
+
+def interleaved_times(fns: Mapping[str, Callable[[], object]], repeats: int = 5, warmup: int = 1,
+                      max_seconds: Optional[float] = None) -> dict:
+    """Median seconds of each callable, timed round-robin (a, b, c, a, b, c, ...).
+
+    On a shared, noisy machine interleaving makes the ratios between the callables robust:
+    a burst of load from another process hits every variant alike. ``max_seconds`` bounds the
+    total timed wall time (at least one round always runs). Returns ``{name: stats}`` with the
+    same keys as :func:`time_stats`.
+    """
+    for _ in range(max(0, warmup)):
+        for fn in fns.values():
+            fn()
+    times = {name: [] for name in fns}
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        spent = 0.0
+        for _ in range(max(1, repeats)):
+            for name, fn in fns.items():
+                t0 = time.perf_counter()
+                fn()
+                dt = time.perf_counter() - t0
+                times[name].append(dt)
+                spent += dt
+            if max_seconds is not None and spent >= max_seconds:
+                break
+    finally:
+        if enabled:
+            gc.enable()
+    return {name: {"median": statistics.median(ts), "min": min(ts), "max": max(ts), "repeats": len(ts)}
+            for name, ts in times.items()}
 
 
 def _fmt(value) -> str:

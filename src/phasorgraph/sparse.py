@@ -217,6 +217,16 @@ class SparseOperator:
 
 
 # ---------------------------------------------------------------------- the raw product
+#
+# Kernel choice (measured by bench/kernels.py on the project's 2-core CPU machine, torch 2.13):
+# * a real CSR times a dense (N, W) block goes through torch.sparse.mm(matrix, x, "sum"), the
+#   row-parallel CPU kernel torch added for reductions; it beat the plain ``matrix @ x`` by
+#   about 1.3-1.7x here at F = 64 (same result to rounding).
+# * torch's complex CSR product has no such kernel, and was about 1.5x slower than two real
+#   products (real and imaginary parts of the values) of width 2F on view_as_real features,
+#   combined as a + i b. So on CPU a complex matrix is kept as its two real parts, split once
+#   per operator and cached. Other devices use torch.sparse.mm on the complex matrix directly.
+# * int32 indices and feature chunking were no faster (chunking was slower), so neither is used.
 def _check_features(op: SparseOperator, x: torch.Tensor) -> None:
     if not isinstance(x, torch.Tensor):
         raise GraphInputError(f"x must be a torch.Tensor; got {type(x).__name__}")
@@ -235,62 +245,158 @@ def _check_features(op: SparseOperator, x: torch.Tensor) -> None:
         raise GraphInputError(f"x is on {x.device} but the operator is on {op.device}; move one of them")
 
 
-def _spmm(matrix: torch.Tensor, low_rank, x2d: torch.Tensor) -> torch.Tensor:
-    """matrix @ x2d (+ U (V^H x2d)); x2d (N, F) with a dtype the matrix can multiply."""
-    out = torch.sparse.mm(matrix, x2d) if x2d.shape[1] else x2d.new_zeros((matrix.shape[0], 0))
-    if low_rank is not None:
-        U, V = low_rank
-        out = out + U @ (V.conj().T @ x2d)
-    return out
+def _plain(x: torch.Tensor) -> torch.Tensor:
+    """x without lazy conjugate/negative bits (view_as_real refuses them)."""
+    if x.is_complex():
+        x = x.resolve_conj()
+    return x.resolve_neg()
+
+
+class _Csr:
+    """A CSR matrix prepared for products; on CPU a complex one also as its two real parts.
+
+    ``re`` and ``im`` share the index tensors of ``matrix``: the extra memory is one real array
+    of nnz values each.
+    """
+
+    __slots__ = ("matrix", "re", "im")
+
+    def __init__(self, matrix: torch.Tensor):
+        self.matrix = matrix
+        self.re = self.im = None
+        if matrix.is_complex() and matrix.device.type == "cpu":
+            crow, col = matrix.crow_indices(), matrix.col_indices()
+            parts = torch.view_as_real(_plain(matrix.values().detach()))
+            size = tuple(matrix.shape)
+            self.re = csr_matrix(crow, col, parts[:, 0].contiguous(), size)
+            self.im = csr_matrix(crow, col, parts[:, 1].contiguous(), size)
+
+
+def _real_spmm(matrix: torch.Tensor, x2d: torch.Tensor) -> torch.Tensor:
+    """Real CSR (M, N) times real (N, W), with the row-parallel reduction kernel on CPU."""
+    if x2d.shape[1] == 0 or matrix.shape[0] == 0 or matrix.shape[1] == 0:
+        return x2d.new_zeros((matrix.shape[0], x2d.shape[1]))
+    if matrix.device.type == "cpu":
+        return torch.sparse.mm(matrix, x2d.contiguous(), "sum")
+    return torch.sparse.mm(matrix, x2d)
+
+
+def _view_real(x2d: torch.Tensor) -> torch.Tensor:
+    """Complex (N, W) as real (N, 2W), interleaved (re, im) per feature."""
+    return torch.view_as_real(_plain(x2d)).reshape(x2d.shape[0], 2 * x2d.shape[1])
+
+
+def _view_complex(y: torch.Tensor) -> torch.Tensor:
+    """Real (N, 2W) interleaved as complex (N, W)."""
+    return torch.view_as_complex(y.reshape(y.shape[0], y.shape[1] // 2, 2))
+
+
+def _csr_product(k: _Csr, x2d: torch.Tensor) -> torch.Tensor:
+    """``matrix @ x2d`` for a real or complex matrix and real or complex (N, W) x2d."""
+    m = k.matrix
+    if not m.is_complex():
+        if x2d.is_complex():  # one real product of width 2W; the matrix is never cast
+            return _view_complex(_real_spmm(m, _view_real(x2d)))
+        return _real_spmm(m, x2d)
+    if k.re is None:  # not on CPU: the device's own complex kernel
+        if x2d.shape[1] == 0:
+            return x2d.new_zeros((m.shape[0], 0), dtype=m.dtype)
+        return torch.sparse.mm(m, x2d.to(m.dtype))
+    if not x2d.is_complex():
+        return torch.complex(_real_spmm(k.re, x2d), _real_spmm(k.im, x2d))
+    xr = _view_real(x2d)
+    a = _view_complex(_real_spmm(k.re, xr))
+    b = _view_complex(_real_spmm(k.im, xr))
+    return a.add_(b, alpha=1j)  # (Re A) x + i (Im A) x
+
+
+def _csr_product_real(k: _Csr, g2d: torch.Tensor) -> torch.Tensor:
+    """``Re(matrix @ g2d)`` for complex (N, W) g2d, at the cost of real products of width W."""
+    m = k.matrix
+    if not m.is_complex():
+        return _real_spmm(m, g2d.real)
+    if k.re is None:
+        return _csr_product(k, g2d).real
+    g = _plain(g2d)
+    return _real_spmm(k.re, g.real).sub_(_real_spmm(k.im, g.imag))
+
+
+def _low_rank_term(low_rank, x2d: torch.Tensor) -> torch.Tensor:
+    """``U (V^H x2d)`` for the (N, r) pair (U, V); small dense products, dtypes promoted."""
+    U, V = low_rank
+    dtype = torch.promote_types(U.dtype, x2d.dtype)
+    U, V, x2d = U.to(dtype), V.to(dtype), x2d.to(dtype)
+    return U @ (V.conj().T @ x2d)
+
+
+def _kernel(op: SparseOperator) -> _Csr:
+    """The operator's prepared matrix, built on first use and cached on the operator."""
+    k = op.__dict__.get("_kernel")
+    if k is None or k.matrix is not op.matrix:
+        k = _Csr(op.matrix)
+        op.__dict__["_kernel"] = k
+    return k
+
+
+def _flat(x: torch.Tensor) -> torch.Tensor:
+    """(N, ...) as (N, W); works for N = 0 and W = 0 too."""
+    width = 1
+    for s in x.shape[1:]:
+        width *= int(s)
+    return x.reshape(x.shape[0], width)
 
 
 def _apply(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
     """op @ x for x (N, ...), without autograd bookkeeping; dtypes already checked."""
-    n = op.num_rows
-    tail = x.shape[1:]
-    if op.is_complex:
-        xc = x if x.is_complex() else x.to(op.dtype)
-        out = _spmm(op.matrix, op.low_rank, xc.reshape(n, -1))
-        return out.reshape((n,) + tuple(tail))
-    if x.is_complex():
-        # a real operator on complex features: one real product of width 2F
-        xr = torch.view_as_real(x.resolve_conj()).reshape(n, -1)
-        out = _spmm(op.matrix, op.low_rank, xr)
-        return torch.view_as_complex(out.reshape((n,) + tuple(tail) + (2,)).contiguous())
-    return _spmm(op.matrix, op.low_rank, x.contiguous().reshape(n, -1)).reshape((n,) + tuple(tail))
+    x2d = _flat(x)
+    out = _csr_product(_kernel(op), x2d)
+    if op.low_rank is not None:
+        out = out + _low_rank_term(op.low_rank, x2d)
+    return out.reshape((op.num_rows,) + tuple(x.shape[1:]))
 
 
-def _match_input(grad: torch.Tensor, x_dtype: torch.dtype) -> torch.Tensor:
-    if grad.is_complex() and not x_dtype.is_complex:
-        return grad.real.contiguous()
-    return grad
+def _apply_real(op: SparseOperator, g: torch.Tensor) -> torch.Tensor:
+    """Re(op @ g) for complex g (N, ...): the gradient of a real x under a complex product."""
+    g2d = _flat(g)
+    out = _csr_product_real(_kernel(op), g2d)
+    if op.low_rank is not None:
+        out = out + _low_rank_term(op.low_rank, g2d).real
+    return out.reshape((op.num_rows,) + tuple(g.shape[1:]))
+
+
+def _input_grad(op: SparseOperator, grad: torch.Tensor, x_is_complex: bool) -> torch.Tensor:
+    """``op @ grad`` shaped for the input: its real part when x was real (PyTorch's convention)."""
+    if grad.is_complex() and not x_is_complex:
+        return _apply_real(op, grad)
+    return _apply(op, grad)
 
 
 class _HermitianMatmul(torch.autograd.Function):
     @staticmethod
     def forward(ctx, x, op):
         ctx.op = op
-        ctx.x_dtype = x.dtype
+        ctx.x_is_complex = x.is_complex()
         return _apply(op, x)
 
     @staticmethod
     @once_differentiable
     def backward(ctx, grad):
         # y = op x with op^H = op, so dL/dx = op^H grad = op grad: no transpose is built.
-        return _match_input(_apply(ctx.op, grad.contiguous()), ctx.x_dtype), None
+        return _input_grad(ctx.op, grad, ctx.x_is_complex), None
 
 
 class _GeneralMatmul(torch.autograd.Function):
     @staticmethod
     def forward(ctx, x, op):
         ctx.op = op
-        ctx.x_dtype = x.dtype
+        ctx.x_is_complex = x.is_complex()
         return _apply(op, x)
 
     @staticmethod
     @once_differentiable
     def backward(ctx, grad):
-        return _match_input(_apply(ctx.op.transpose_conj(), grad.contiguous()), ctx.x_dtype), None
+        # dL/dx = op^H grad, with op^H built on the first backward and cached on op.
+        return _input_grad(ctx.op.transpose_conj(), grad, ctx.x_is_complex), None
 
 
 def hermitian_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
@@ -303,10 +409,16 @@ def hermitian_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
         op: a :class:`SparseOperator` with ``hermitian=True``.
         x: (N, ...) real or complex tensor of the operator's precision. Real x with a complex
             operator gives a complex result; complex x with a real operator uses one real
-            product of width 2F.
+            product of width 2F (the operator is never cast to complex).
 
     Returns:
         (N, ...) tensor: complex if either factor is complex.
+
+    Notes:
+        On CPU a complex operator is multiplied as two real products (its real and imaginary
+        parts, split once and cached on ``op``), which measured faster than torch's complex
+        CSR product; see bench/README.md. For real x and a complex operator the backward
+        needs only :math:`\mathrm{Re}(op\, g)`, computed from real products of width F.
 
     Example:
         >>> import torch
@@ -324,7 +436,25 @@ def hermitian_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
 
 
 def general_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
-    """``op @ x`` for any operator; backward ``op^H @ grad`` with ``op^H`` cached on ``op``."""
+    r"""``op @ x`` for any operator; backward ``op^H @ grad`` with ``op^H`` cached on ``op``.
+
+    The conjugate transpose is built once, on the first backward, by
+    :meth:`SparseOperator.transpose_conj` and reused by every later call.
+
+    Args:
+        op: a :class:`SparseOperator` (Hermitian or not; a low-rank part is allowed).
+        x: (N, ...) real or complex tensor of the operator's precision.
+
+    Returns:
+        (N, ...) tensor: complex if either factor is complex.
+
+    Example:
+        >>> import torch
+        >>> m = torch.tensor([[0.0, 1.0], [0.0, 0.0]]).to_sparse_csr()
+        >>> op = SparseOperator(m, hermitian=False)
+        >>> general_matmul(op, torch.tensor([[1.0], [2.0]])).tolist()
+        [[2.0], [0.0]]
+    """
     if not isinstance(op, SparseOperator):
         raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
     _check_features(op, x)
@@ -334,22 +464,41 @@ def general_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
 # ---------------------------------------------------------------------- values product
 def _row_indices(crow: torch.Tensor) -> torch.Tensor:
     n = crow.numel() - 1
-    return torch.repeat_interleave(torch.arange(n, device=crow.device), crow.diff())
+    return torch.repeat_interleave(torch.arange(n, device=crow.device, dtype=crow.dtype), crow.diff())
 
 
-def _sampled_products(grad2d: torch.Tensor, x2d: torch.Tensor, rows: torch.Tensor, cols: torch.Tensor) -> torch.Tensor:
-    """g_k = sum_f grad[rows_k, f] * conj(x[cols_k, f]), in chunks of bounded memory."""
+def _sampled_products(grad2d: torch.Tensor, x2d: torch.Tensor, rows: torch.Tensor, cols: torch.Tensor,
+                      complex_values: bool) -> torch.Tensor:
+    r"""g_k = sum_f grad[rows_k, f] * conj(x[cols_k, f]), in chunks of bounded memory.
+
+    Returns complex g when ``complex_values``, else its real part (the gradient of real values).
+    The two gathered (chunk, W) blocks hold at most ``_SDDMM_CHUNK_ELEMENTS`` elements each.
+    """
     nnz = rows.numel()
-    width = max(int(grad2d.shape[1]), 1)
-    step = max(1, _SDDMM_CHUNK_ELEMENTS // width)
     dtype = torch.promote_types(grad2d.dtype, x2d.dtype)
+    if not complex_values:
+        dtype = _real_precision(dtype)
     out = torch.empty(nnz, dtype=dtype, device=grad2d.device)
-    xc = x2d.conj() if x2d.is_complex() else x2d
+    if nnz == 0:
+        return out
+    if grad2d.shape[1] == 0:
+        return out.zero_()
+    g, x = _plain(grad2d), _plain(x2d)
+    if g.is_complex() and x.is_complex() and not complex_values:
+        # Re(sum g conj(x)) = sum over the real views of g_re x_re + g_im x_im
+        g, x = _view_real(g), _view_real(x)
+    mixed = g.is_complex() != x.is_complex()  # complex grad, real x (complex values, real x)
+    if mixed:
+        g = torch.view_as_real(g)  # (N, W, 2)
+    step = max(1, _SDDMM_CHUNK_ELEMENTS // max(int(g[0].numel()), 1))
     for start in range(0, nnz, step):
         stop = min(nnz, start + step)
-        g = grad2d.index_select(0, rows[start:stop])
-        v = xc.index_select(0, cols[start:stop])
-        out[start:stop] = (g * v).sum(dim=1)
+        gs = g.index_select(0, rows[start:stop])
+        xs = x.index_select(0, cols[start:stop])
+        if mixed:
+            out[start:stop] = torch.view_as_complex((gs * xs.unsqueeze(-1)).sum(dim=1))
+        else:
+            torch.linalg.vecdot(xs, gs, out=out[start:stop])  # sum_f conj(x) g
     return out
 
 
@@ -357,38 +506,37 @@ class _ValuesMatmul(torch.autograd.Function):
     @staticmethod
     def forward(ctx, values, x, crow, col, rows, adjoint_perm, hermitian):
         n = crow.numel() - 1
-        op = SparseOperator(csr_matrix(crow, col, values, (n, n)), hermitian=hermitian, kind="values")
+        kernel = _Csr(csr_matrix(crow, col, values.detach(), (n, n)))
         ctx.save_for_backward(values, x, crow, col, rows, adjoint_perm)
+        ctx.kernel = kernel if hermitian else None
         ctx.hermitian = hermitian
-        return _apply(op, x)
+        return _csr_product(kernel, _flat(x)).reshape((n,) + tuple(x.shape[1:]))
 
     @staticmethod
     @once_differentiable
     def backward(ctx, grad):
         values, x, crow, col, rows, adjoint_perm = ctx.saved_tensors
         n = crow.numel() - 1
-        grad = grad.contiguous()
+        g2 = _flat(grad)
         grad_values = grad_x = None
         if ctx.needs_input_grad[0]:
-            g2 = grad.reshape(n, -1)
-            x2 = x.reshape(n, -1)
-            gv = _sampled_products(g2, x2, rows, col)
-            if not values.is_complex():
-                gv = gv.real if gv.is_complex() else gv
+            gv = _sampled_products(g2, _flat(x), rows, col, values.is_complex())
             grad_values = gv.to(values.dtype)
         if ctx.needs_input_grad[1]:
             if ctx.hermitian:
-                op = SparseOperator(csr_matrix(crow, col, values, (n, n)), hermitian=True, kind="values")
+                kernel = ctx.kernel
             else:
-                # op^H on the transposed pattern: values permuted once per call (O(nnz))
-                vals = values[adjoint_perm]
-                vals = vals.conj() if vals.is_complex() else vals
-                t_rows = col[adjoint_perm]
-                t_cols = rows[adjoint_perm]
-                t_crow = torch.zeros(n + 1, dtype=torch.int64, device=crow.device)
-                t_crow[1:] = torch.cumsum(torch.bincount(t_rows, minlength=n), 0)
-                op = SparseOperator(csr_matrix(t_crow, t_cols, vals, (n, n)), hermitian=False, kind="values^H")
-            grad_x = _match_input(_apply(op, grad), x.dtype)
+                # A^H on the transposed pattern: values permuted and conjugated, O(nnz) per call
+                vals = values.detach()[adjoint_perm]
+                vals = vals.conj().resolve_conj() if vals.is_complex() else vals
+                t_crow = torch.zeros(n + 1, dtype=crow.dtype, device=crow.device)
+                t_crow[1:] = torch.cumsum(torch.bincount(col, minlength=n), 0)
+                kernel = _Csr(csr_matrix(t_crow, rows[adjoint_perm], vals, (n, n)))
+            if g2.is_complex() and not x.is_complex():
+                gx = _csr_product_real(kernel, g2)
+            else:
+                gx = _csr_product(kernel, g2)
+            grad_x = gx.reshape(x.shape)
         return grad_values, grad_x, None, None, None, None, None
 
 
@@ -398,21 +546,25 @@ def values_matmul(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, x
     r"""``A @ x`` with ``A`` the CSR matrix ``(crow, col, values)``, differentiable in ``values``.
 
     The gradient of value k is :math:`\sum_f g[r_k, f]\, \overline{x[c_k, f]}` (a sampled
-    dense-dense product, computed in chunks so extra memory stays O(nnz + N F)); the
-    gradient of x is :math:`A^H g`, taken as :math:`A g` when ``hermitian=True``.
+    dense-dense product, computed in chunks so extra memory stays O(nnz + N F)); real values
+    get its real part. The gradient of x is :math:`A^H g`, taken as :math:`A g` when
+    ``hermitian=True`` (the real part of it when x is real).
 
     Args:
-        crow, col: int64 CSR index tensors of a fixed pattern (N + 1,), (nnz,).
+        crow, col: int64 CSR index tensors of a fixed pattern (N + 1,), (nnz,); columns sorted
+            within each row.
         values: (nnz,) real or complex tensor; may require grad.
-        x: (N, ...) features of the same precision.
-        hermitian: whether the values make A Hermitian (skips building A^H in backward).
+        x: (N, ...) real or complex features of the same precision. Real x with complex values
+            is multiplied without casting x to complex.
+        hermitian: whether the values make A Hermitian (skips building A^H in backward). The
+            caller vouches for it; it is not checked.
         rows: optional (nnz,) row index of each value (computed from crow if absent; pass it
             to save the work when calling repeatedly).
         adjoint_perm: optional (nnz,) permutation taking the values to the CSR order of A^T
             (needed only when not Hermitian; computed if absent).
 
     Returns:
-        (N, ...) tensor.
+        (N, ...) tensor, complex if values or x are.
 
     Example:
         >>> import torch
@@ -421,12 +573,21 @@ def values_matmul(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, x
         >>> values_matmul(crow, col, v, torch.ones(2, 1)).sum().backward(); v.grad.tolist()
         [1.0, 1.0]
     """
+    for name, t in (("crow", crow), ("col", col)):
+        if not isinstance(t, torch.Tensor) or t.dim() != 1 or t.dtype not in (torch.int32, torch.int64):
+            raise GraphInputError(f"{name} must be a 1-D int32 or int64 tensor; got "
+                                  f"{getattr(t, 'dtype', type(t).__name__)} with shape {tuple(getattr(t, 'shape', ()))}")
+    if crow.numel() < 1:
+        raise GraphInputError("crow must hold N + 1 >= 1 row offsets; got an empty tensor")
     n = crow.numel() - 1
-    if values.dim() != 1 or values.numel() != col.numel():
-        raise GraphInputError(f"values must be 1-D with one entry per column index ({col.numel()}); got shape {tuple(values.shape)}")
+    if not isinstance(values, torch.Tensor) or values.dim() != 1 or values.numel() != col.numel():
+        raise GraphInputError(f"values must be 1-D with one entry per column index ({col.numel()}); "
+                              f"got shape {tuple(getattr(values, 'shape', ()))}")
+    if values.dtype not in _SUPPORTED:
+        raise GraphInputError(f"values dtype must be one of {_SUPPORTED}; got {values.dtype}")
     if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n:
         raise GraphInputError(f"x must have N = {n} rows; got shape {tuple(getattr(x, 'shape', ()))}")
-    if _real_precision(x.dtype) != _real_precision(values.dtype):
+    if x.dtype not in _SUPPORTED or _real_precision(x.dtype) != _real_precision(values.dtype):
         raise GraphInputError(f"x has dtype {x.dtype} but values are {values.dtype}; use the same precision")
     if rows is None:
         rows = _row_indices(crow)
