@@ -22,6 +22,7 @@ from torch import nn
 
 from phasorgraph import DirectedGraph
 from phasorgraph.data import GraphBatch, directed_block_model, random_out_graph
+from phasorgraph.nn import MagneticFilter
 from phasorgraph.operators import magnetic_matmul
 
 WORLD = 2
@@ -42,6 +43,24 @@ class ChargeRegressor(nn.Module):
     def forward(self, batch: GraphBatch, x: torch.Tensor) -> torch.Tensor:
         h = magnetic_matmul(batch.graph, self.charge, x).abs()
         return batch.readout(self.linear(h), "mean").squeeze(-1)
+
+
+class FilterRegressor(nn.Module):
+    """The library's layers: a MagneticFilter with a learned charge beside one with a fixed
+    charge (its operator cached per graph, never a buffer), modulus, Linear, mean readout."""
+
+    def __init__(self, channels: int = CHANNELS):
+        super().__init__()
+        self.learned = MagneticFilter(channels, 4, order=2, charge=0.1, learn_charge=True, dtype=torch.float64)
+        self.fixed = MagneticFilter(channels, 2, order=1, charge=0.25, dtype=torch.float64)
+        self.linear = nn.Linear(6, 1, dtype=torch.float64)
+
+    def forward(self, batch: GraphBatch, x: torch.Tensor) -> torch.Tensor:
+        h = torch.cat([self.learned(x, batch.graph), self.fixed(x, batch.graph)], dim=1).abs()
+        return batch.readout(self.linear(h), "mean").squeeze(-1)
+
+
+MODELS = {"charge_regressor": ChargeRegressor, "filter_regressor": FilterRegressor}
 
 
 def dataset():
@@ -71,9 +90,34 @@ def shard_batches(rank: int):
     return out
 
 
-def new_model() -> ChargeRegressor:
+def new_model(name: str) -> nn.Module:
     torch.manual_seed(0)
-    return ChargeRegressor()
+    return MODELS[name]()
+
+
+def learned_charge_names(model: nn.Module) -> list:
+    return [k for k, _ in model.named_parameters() if "charge" in k]
+
+
+def _train_ddp(name: str, rank: int) -> dict:
+    model = new_model(name)
+    if rank == 1:  # DDP must broadcast rank 0's parameters at construction
+        with torch.no_grad():
+            for p in model.parameters():
+                p.add_(1.0)
+    ddp = nn.parallel.DistributedDataParallel(model)
+    start = {k: v.detach().clone() for k, v in model.state_dict().items()}
+    opt = torch.optim.SGD(ddp.parameters(), lr=LR)
+    grads = []
+    for batch, x, y in shard_batches(rank):
+        opt.zero_grad()
+        loss = torch.nn.functional.mse_loss(ddp(batch, x), y)
+        loss.backward()
+        grads.append({k: p.grad.detach().clone() for k, p in model.named_parameters()})
+        opt.step()
+    final = {k: v.detach().clone() for k, v in model.state_dict().items()}
+    buffers = [k for k, b in model.named_buffers() if b.layout != torch.strided]
+    return {"start": start, "grads": grads, "final": final, "sparse_buffers": buffers}
 
 
 def _worker(rank: int, init_file: str, out_dir: str) -> None:
@@ -81,30 +125,15 @@ def _worker(rank: int, init_file: str, out_dir: str) -> None:
     dist.init_process_group("gloo", init_method=f"file://{init_file}", rank=rank, world_size=WORLD,
                             timeout=datetime.timedelta(seconds=60))
     try:
-        model = new_model()
-        if rank == 1:  # DDP must broadcast rank 0's parameters at construction
-            with torch.no_grad():
-                for p in model.parameters():
-                    p.add_(1.0)
-        ddp = nn.parallel.DistributedDataParallel(model)
-        start = {k: v.detach().clone() for k, v in model.state_dict().items()}
-        opt = torch.optim.SGD(ddp.parameters(), lr=LR)
-        grads = []
-        for batch, x, y in shard_batches(rank):
-            opt.zero_grad()
-            loss = torch.nn.functional.mse_loss(ddp(batch, x), y)
-            loss.backward()
-            grads.append({k: p.grad.detach().clone() for k, p in model.named_parameters()})
-            opt.step()
-        final = {k: v.detach().clone() for k, v in model.state_dict().items()}
-        torch.save({"start": start, "grads": grads, "final": final}, os.path.join(out_dir, f"rank{rank}.pt"))
+        out = {name: _train_ddp(name, rank) for name in MODELS}
+        torch.save(out, os.path.join(out_dir, f"rank{rank}.pt"))
     finally:
         dist.destroy_process_group()
 
 
-def reference():
+def reference(name: str):
     """One process: step on the averaged loss of both shards' mini-batches."""
-    model = new_model()
+    model = new_model(name)
     start = {k: v.detach().clone() for k, v in model.state_dict().items()}
     opt = torch.optim.SGD(model.parameters(), lr=LR)
     shards = [shard_batches(r) for r in range(WORLD)]
@@ -115,7 +144,7 @@ def reference():
         (sum(losses) / WORLD).backward()
         grads.append({k: p.grad.detach().clone() for k, p in model.named_parameters()})
         opt.step()
-    return start, grads, {k: v.detach().clone() for k, v in model.state_dict().items()}
+    return start, grads, {k: v.detach().clone() for k, v in model.state_dict().items()}, learned_charge_names(model)
 
 
 def run_workers(tmp_path, timeout_s: float = 120.0):
@@ -134,11 +163,18 @@ def run_workers(tmp_path, timeout_s: float = 120.0):
     return [torch.load(tmp_path / f"rank{r}.pt") for r in range(WORLD)]
 
 
-def test_ddp_gradients_agree_across_ranks_and_match_the_averaged_loss(tmp_path):
-    ranks = run_workers(tmp_path)
-    start, grads, final = reference()
-    assert grads[0]["charge"].abs() > 0  # the charge really is learned
-    for r, out in enumerate(ranks):
+@pytest.fixture(scope="module")
+def ddp_results(tmp_path_factory):
+    return run_workers(tmp_path_factory.mktemp("ddp"))
+
+
+@pytest.mark.parametrize("name", sorted(MODELS))
+def test_ddp_gradients_agree_across_ranks_and_match_the_averaged_loss(ddp_results, name):
+    ranks = [r[name] for r in ddp_results]
+    start, grads, final, charges = reference(name)
+    assert charges and all(grads[0][k].abs().max() > 0 for k in charges)  # the charge really is learned
+    for out in ranks:
+        assert out["sparse_buffers"] == []  # nothing sparse for DDP to broadcast
         for k in start:  # DDP broadcast rank 0's initial parameters (rank 1 started shifted)
             torch.testing.assert_close(out["start"][k], start[k], rtol=0, atol=0)
         for step in range(STEPS):
@@ -147,4 +183,5 @@ def test_ddp_gradients_agree_across_ranks_and_match_the_averaged_loss(tmp_path):
                 torch.testing.assert_close(out["grads"][step][k], grads[step][k], rtol=1e-10, atol=1e-12)
         for k in final:
             torch.testing.assert_close(out["final"][k], final[k], rtol=1e-10, atol=1e-12)
-    assert not torch.equal(final["charge"], start["charge"])
+    for k in charges:
+        assert not torch.equal(final[k], start[k])

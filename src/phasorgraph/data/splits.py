@@ -177,7 +177,7 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
     lo = np.minimum(src, dst)[off]
     hi = np.maximum(src, dst)[off]
     key = lo * max(n, 1) + hi
-    links, first, count = np.unique(key, return_index=True, return_counts=True)
+    links, first, edge_link, count = np.unique(key, return_index=True, return_inverse=True, return_counts=True)
     reciprocal = count == 2
     # orientation of each link's representative edge: the edge itself for one-way links,
     # low -> high for reciprocal ones (the first of its two edges in key order is arbitrary)
@@ -194,7 +194,6 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
     held[val_ids] = True
     held[test_ids] = True
     keep = np.ones(src.size, dtype=bool)
-    edge_link = np.searchsorted(links, key)
     keep[np.flatnonzero(off)[held[edge_link]]] = False
     train_graph = graph.subgraph_edges(torch.as_tensor(keep))
 
