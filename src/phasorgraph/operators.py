@@ -582,7 +582,12 @@ def proximity_operators(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = 
 
 # ---------------------------------------------------------------------- learned charge
 def _magnetic_pattern(graph: DirectedGraph):
-    """Fixed CSR pattern of D^-1/2 H D^-1/2 and the real pieces of its values; cached."""
+    """Fixed CSR pattern of D^-1/2 H D^-1/2 and the real pieces of its values; cached.
+
+    Returns ``(crow, cols, rows, magnitude, anti)``: int64 CSR indices (sorted by row, then
+    column), the row of each non-zero, :math:`(A_s)_{uv} / \\sqrt{d_u d_v}` and
+    :math:`(A - A^T)_{uv}` (float64) on the non-zeros of :math:`A + A^T`.
+    """
     cached = graph._cache.get("magnetic_pattern")
     if cached is not None:
         return cached
@@ -595,6 +600,24 @@ def _magnetic_pattern(graph: DirectedGraph):
     pattern = (crow, cols.contiguous(), rows.contiguous(), magnitude, anti)
     graph._cache["magnetic_pattern"] = pattern
     return pattern
+
+
+def _magnetic_factors(graph: DirectedGraph, phase: str, dtype: torch.dtype, device) -> tuple:
+    """Pattern and ``(magnitude, 2 pi base)`` in ``dtype`` on ``device``, cached per combination.
+
+    The values at charge q are ``polar(magnitude, q * 2 pi base)``: one multiply and one polar
+    per call, with nothing converted again.
+    """
+    key = ("magnetic_factors", phase, dtype, str(device))
+    cached = graph._cache.get(key)
+    if cached is not None:
+        return cached
+    crow, cols, rows, magnitude, anti = _magnetic_pattern(graph)
+    base = _phase_angles(anti, 1.0, phase)
+    factors = tuple(t.to(device=device) for t in (crow, cols, rows)) + (
+        magnitude.to(device=device, dtype=dtype), base.to(device=device, dtype=dtype))
+    graph._cache[key] = factors
+    return factors
 
 
 def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor, *,
@@ -638,8 +661,7 @@ def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor,
     real = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
     if charge.dtype != real:
         raise GraphInputError(f"charge has dtype {charge.dtype} but x has precision {real}; use the same precision")
-    crow, cols, rows, magnitude, anti = _magnetic_pattern(graph)
-    angle = _phase_angles(anti.to(real), charge, phase)
-    values = torch.polar(magnitude.to(real), angle)
-    xc = x if x.is_complex() else x.to(values.dtype)
-    return xc - values_matmul(crow, cols, values, xc, hermitian=True, rows=rows)
+    crow, cols, rows, magnitude, base = _magnetic_factors(graph, phase, real, x.device)
+    values = torch.polar(magnitude, base * charge)  # the non-zeros of D^-1/2 H(q) D^-1/2
+    # real x stays real: values_matmul multiplies it by the real and imaginary parts directly
+    return x - values_matmul(crow, cols, values, x, hermitian=True, rows=rows)
