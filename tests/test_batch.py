@@ -168,3 +168,23 @@ def test_iterate_batches_covers_each_graph_once_with_its_target():
 def test_batch_rejects_bad_input(call, message):
     with pytest.raises(GraphInputError, match=message):
         call()
+
+
+# ---------------------------------------------------------------------- properties
+from hypothesis import given  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from strategies import charges, directed_graphs  # noqa: E402
+
+
+@given(st.lists(directed_graphs(max_nodes=6), min_size=1, max_size=4), charges())
+def test_property_batch_magnetic_laplacian_is_block_diagonal(graphs, q):
+    # reference: scipy.sparse.block_diag of the parts' operators, on generated graphs with
+    # isolated nodes, self-loops, duplicates, reciprocal edges and 0-node graphs
+    b = GraphBatch.from_graphs(graphs)
+    got = magnetic_laplacian(b.graph, q, dtype=torch.complex128).to_dense().numpy()
+    ref = sp.block_diag([sp.csr_matrix(magnetic_laplacian(g, q, dtype=torch.complex128).to_dense().numpy())
+                         for g in graphs]).toarray()
+    np.testing.assert_allclose(got, ref.reshape(got.shape), rtol=0, atol=1e-13)
+    x = torch.ones(b.graph.num_nodes, 1, dtype=torch.float64)
+    assert b.readout(x, "sum").flatten().tolist() == [float(g.num_nodes) for g in graphs]

@@ -171,3 +171,30 @@ def test_existence_split_refuses_a_graph_too_dense_for_negatives():
     complete = DirectedGraph.from_networkx(nx.complete_graph(5))
     with pytest.raises(GraphInputError, match=r"graph has only 0 non-adjacent node pairs but the existence task needs 10"):
         split_links(complete, "existence", 0.2, 0.2, seed=0)
+
+
+# ---------------------------------------------------------------------- properties
+from hypothesis import given  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from strategies import directed_graphs  # noqa: E402
+
+
+@given(directed_graphs(max_nodes=12, max_edges=10), st.sampled_from(["existence", "direction"]), st.integers(0, 3))
+def test_property_no_held_out_pair_reaches_the_training_graph(graph, task, seed):
+    # generated graphs with isolated nodes, self-loops, duplicates and reciprocal edges
+    try:
+        s = split_links(graph, task, 0.3, 0.3, seed=seed)
+    except GraphInputError as err:  # too dense for balanced negatives is the one allowed refusal
+        assert task == "existence" and "non-adjacent node pairs" in str(err)
+        return
+    train = set(zip(s.train_graph.source.tolist(), s.train_graph.target.tolist()))
+    full = set(zip(graph.source.tolist(), graph.target.tolist()))
+    assert train <= full
+    for part in (s.val, s.test):
+        for (u, v), label in zip(part.pairs.t().tolist(), part.labels.tolist()):
+            assert (u, v) not in train and (v, u) not in train
+            if label == 0 and task == "existence":
+                assert (u, v) not in full and (v, u) not in full and u != v
+    kept_loops = {(u, v) for u, v in full if u == v}
+    assert kept_loops <= train
