@@ -26,6 +26,7 @@ from typing import Callable, Optional, Sequence
 
 import torch
 from torch import nn
+from torch.autograd.function import once_differentiable
 
 from ..errors import GraphInputError
 from ..graph import DirectedGraph
@@ -161,21 +162,64 @@ def _output_dtype(*tensors_or_ops) -> torch.dtype:
     return _COMPLEX_OF[real] if cplx else real
 
 
-def _chebyshev_sum(x: torch.Tensor, rescaled: Callable[[torch.Tensor], torch.Tensor], order: int,
-                   mix: Callable[[int, torch.Tensor], torch.Tensor]) -> torch.Tensor:
-    r""":math:`\sum_k \mathrm{mix}(k, T_k)` with :math:`T_0 = x`, :math:`T_1 = \tilde L x`,
-    :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}` (Hammond et al. 2011), ``rescaled`` applying
-    :math:`\tilde L`. Terms are accumulated, never concatenated, so memory holds the K + 1
-    terms autograd needs and one output block.
+class _ComplexRealMatmul(torch.autograd.Function):
+    """``t @ w`` for complex t (N, C) and real w (C, O), the weight never cast to complex.
+
+    Forward ``Re(t) w + i Im(t) w``; backward ``g w^T`` for t (complex) and
+    ``Re(t)^T Re(g) + Im(t)^T Im(g)`` for w, so no zero-filled complex gradient blocks are built
+    for the real and imaginary views.
     """
-    out = mix(0, x)
+
+    @staticmethod
+    def forward(ctx, t, w):
+        ctx.save_for_backward(t, w)
+        return torch.complex(t.real @ w, t.imag @ w)
+
+    @staticmethod
+    @once_differentiable
+    def backward(ctx, g):
+        t, w = ctx.saved_tensors
+        grad_t = grad_w = None
+        if ctx.needs_input_grad[0]:
+            wt = w.T
+            grad_t = torch.complex(g.real @ wt, g.imag @ wt)
+        if ctx.needs_input_grad[1]:
+            grad_w = t.real.T @ g.real + t.imag.T @ g.imag
+        return grad_t, grad_w
+
+
+def _mix(t: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
+    """``t @ w`` for real or complex t and w (a real factor is never cast to complex)."""
+    if t.is_complex() and not w.is_complex():
+        return _ComplexRealMatmul.apply(t, w)
+    if w.is_complex() and not t.is_complex():
+        return t.to(w.dtype) @ w
+    return t @ w
+
+
+def _chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tensor], alpha: float, beta: float,
+                   weights: torch.Tensor) -> torch.Tensor:
+    r""":math:`\sum_k T_k W_k` with :math:`\tilde L t = \alpha P t + \beta t` and ``product`` applying P.
+
+    :math:`T_0 = x`, :math:`T_1 = \tilde L x`, :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}`
+    (Hammond et al. 2011); ``weights`` is (K + 1, C_in, C_out). Terms and the output are
+    accumulated in place where autograd allows it, so memory holds the K + 1 terms autograd
+    needs, the output and about two transient blocks.
+    """
+    order = weights.shape[0] - 1
+    out = _mix(x, weights[0])
     if order == 0:
         return out
-    prev, cur = x, rescaled(x)
-    out = out + mix(1, cur)
+
+    def add(out, term):
+        return out.add_(term) if out.dtype == term.dtype else out + term
+
+    prev, cur = x, product(x).mul(alpha).add_(x, alpha=beta)
+    out = add(out, _mix(cur, weights[1]))
     for k in range(2, order + 1):
-        prev, cur = cur, 2 * rescaled(cur) - prev
-        out = out + mix(k, cur)
+        nxt = product(cur).mul(2 * alpha).add_(cur, alpha=2 * beta).sub_(prev)
+        prev, cur = cur, nxt
+        out = add(out, _mix(cur, weights[k]))
     return out
 
 
@@ -319,13 +363,6 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
             return None
         return _complex_view(self.bias) if self.complex_weights else self.bias
 
-    def _filter(self, x: torch.Tensor, rescaled: Callable, columns: slice = slice(None)) -> torch.Tensor:
-        """Chebyshev sum with the weight columns ``columns`` (no bias)."""
-        w = self._weights()[:, :, columns]
-        if w.is_complex() and not x.is_complex():
-            x = x.to(w.dtype)
-        return _chebyshev_sum(x, rescaled, self.order, lambda k, t: _bilinear(torch.matmul, t, w[k]))
-
     def _precision(self) -> torch.dtype:
         return self.weight.dtype
 
@@ -351,14 +388,12 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
                 )
             if lam <= 1e-12:
                 lam = 1.0  # the zero operator: L~ = -I whatever lmax > 0 is used
-        scale = 2.0 / lam
         if op.num_rows == 0:
             return _empty_output(x, self.out_channels, _output_dtype(x, op, self._weights()), self.parameters())
-
-        def rescaled(t):
-            return scale * (op @ t) - t
-
-        out = self._filter(x, rescaled)
+        w = self._weights()
+        if w.is_complex() and not x.is_complex():
+            x = x.to(w.dtype)
+        out = _chebyshev_sum(x, op.matmul, 2.0 / lam, -1.0, w)
         b = self._bias()
         return out if b is None else out + b
 

@@ -16,7 +16,6 @@ from .filters import (
     _COMPLEX_OF,
     _CachedOperators,
     _OperatorCache,
-    _bilinear,
     _check_count,
     _check_features,
     _chebyshev_sum,
@@ -229,20 +228,14 @@ class MagneticFilter(_CachedOperators, nn.Module):
         charges = self.charge.reshape(-1) if self.learn_charge else self.initial_charge
         groups = []
         for g in range(self.num_charges):
-            cols = slice(g * width, (g + 1) * width)
-            wg = w[:, :, cols]
+            wg = w[:, :, g * width:(g + 1) * width]
             if self.learn_charge:
-                q = charges[g]
-
-                def rescaled(t, q=q):
-                    return magnetic_matmul(graph, q, t, phase=self.phase) - t
+                def product(t, q=charges[g]):
+                    return magnetic_matmul(graph, q, t, phase=self.phase)
             else:
-                op = self._operator(graph, charges[g], cdtype)
-
-                def rescaled(t, op=op):
-                    return op @ t - t
-            groups.append(_chebyshev_sum(x, rescaled, self.order,
-                                         lambda k, t, wg=wg: _bilinear(torch.matmul, t, wg[k])))
+                product = self._operator(graph, charges[g], cdtype).matmul
+            # L~ = L(q) - I: lmax = 2 for the normalized magnetic Laplacian
+            groups.append(_chebyshev_sum(x, product, 1.0, -1.0, wg))
         out = groups[0] if len(groups) == 1 else torch.cat(groups, dim=1)
         if self.bias is not None:
             out = out + (_complex_view(self.bias) if self.complex_weights else self.bias)
