@@ -1,10 +1,10 @@
-"""Cost of diffusion wavelets and scattering, in units of one sparse product of the same width.
+"""Cost of diffusion wavelets and scattering, in units of sparse products of the same width.
 
 For each graph (N = E / 10 nodes, E random one-way edges, symmetric lazy diffusion T, float32,
-F feature columns, J scales) it times, as medians over repeats in one process:
+F feature columns, J scales) it times, in one process:
 
-* ``product(W)``: one ``T @ x`` with x of shape (N, W) (the Hermitian kernel), for the widths
-  the layers use: F, (J + 1) F and J (J + 1) F / 2;
+* ``chain W``: the bare 2^J repeated products ``y = T @ y`` of one (N, W) block (the
+  Hermitian kernel), for the widths the layers use: F, (J + 1) F and J (J + 1) F / 2;
 * ``wavelets``: DiffusionWavelets(J) forward, 2^J products of width F;
 * ``order1`` / ``order2``: DiffusionScattering forward (with the low-pass, the default), and
   ``order1_nolow`` / ``order2_nolow`` (``lowpass=False``);
@@ -13,20 +13,23 @@ F feature columns, J scales) it times, as medians over repeats in one process:
 * ``order1_fwd_bwd``: forward + backward of order 1;
 * ``dense_order1``: the same order-1 computation with a dense (N, N) T (torch.mm), N <= 4096.
 
-Ratios use the fastest of the repeats (``best``): on the shared 2-core machine other jobs
-inflate single runs by up to 50x (seen here), so the minimum is the robust estimate of the
-intrinsic cost; medians are kept in the JSON. ``x_2^J`` is time / (2^J * product(F)), the issue's unit (target for the wavelet pass
-and order 1 without low-pass: <= 1.3); ``x_inherent`` is time / (the products the algorithm
-must do, each timed at its own width), i.e. the overhead beyond the sparse products.
+All cases of a graph are timed in interleaved rounds (one run of each per round), and each
+case keeps its fastest round: on the shared 2-core machine other jobs inflate single runs many
+times over, so the minimum is the robust estimate of the intrinsic cost; medians are kept too.
+``x_2^J`` is time / (chain F), the issue's unit: 2^J products of the input's width (target for
+the wavelet pass: <= 1.3). ``x_inherent`` is time / (the chains the algorithm must run, each
+timed at its own width), i.e. the overhead beyond the sparse products themselves.
 
-Run from the repository root: ``.venv/bin/python bench/scattering.py [--quick]``. The full run
-keeps to a time budget (``--budget`` seconds, default 240) and says where it stopped.
+Run from the repository root: ``.venv/bin/python bench/scattering.py [--quick] [--threads 1]``.
+The full run keeps to a time budget (``--budget`` seconds, default 240) and says where it
+stopped; graphs above 1e6 edges run the main cases only, one timed round.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import statistics
 import sys
 import time
 
@@ -34,7 +37,7 @@ import numpy as np
 import torch
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _common import print_table, time_stats, write_results  # noqa: E402
+from _common import print_table, write_results  # noqa: E402
 
 from phasorgraph import DirectedGraph, operators  # noqa: E402
 from phasorgraph.nn import DiffusionScattering, DiffusionWavelets  # noqa: E402
@@ -70,32 +73,30 @@ def order2_loop(T, x, J):
     return torch.cat(blocks, 1)
 
 
-def _best(fn, repeats):
-    return time_stats(fn, repeats=repeats, warmup=1)["min"]
+REDUCED = ("wavelets", "order1", "order1_nolow", "order2", "order2_nolow")
 
 
-def run_case(num_edges, F, J, repeats, with_dense):
+def run_case(num_edges, F, J, repeats, with_dense, reduced=False):
     t0 = time.perf_counter()
     graph, T = build(num_edges)
     setup = time.perf_counter() - t0
     n = graph.num_nodes
     gen = torch.Generator().manual_seed(1)
     x = torch.randn(n, F, generator=gen)
-    widths = {"F": F, "(J+1)F": (J + 1) * F, "J(J+1)F/2": J * (J + 1) // 2 * F}
-    prod = {}
-    for key, w in widths.items():
-        xw = torch.randn(n, w, generator=gen)
-        prod[key] = _best(lambda: T @ xw, repeats)
     steps = 2 ** J
-    unit = steps * prod["F"]
-    inherent = {
-        "wavelets": unit,
-        "order1": unit + steps * prod["(J+1)F"],
-        "order1_nolow": unit,
-        "order2": unit + steps * (prod["(J+1)F"] + prod["J(J+1)F/2"]),
-        "order2_nolow": unit + steps * prod["(J+1)F"],  # width J F, bounded by (J + 1) F
-        "order2_loop": unit + (J + 1) * steps * prod["F"] + (J * (J + 1) // 2) * steps * prod["F"],
-    }
+    widths = {"F": F, "(J+1)F": (J + 1) * F, "J(J+1)F/2": J * (J + 1) // 2 * F}
+    blocks = {key: torch.randn(n, w, generator=gen) for key, w in widths.items()}
+
+    def chain(xw):
+        # the bare products: 2^J repeated T @ y of one width, nothing else
+        y = xw
+        for _ in range(steps):
+            y = T @ y
+        return y
+
+    # name -> (function, grad enabled); every case is timed in the same interleaved rounds
+    # (one run of each case per round) so that load from other jobs hits all cases alike
+    cases = {f"chain {key}": ((lambda xw: lambda: chain(xw))(xw), False) for key, xw in blocks.items()}
     layers = {
         "wavelets": lambda: DiffusionWavelets(J)(x, T),
         "order1": lambda: DiffusionScattering(F, J, order=1)(x, T),
@@ -104,25 +105,17 @@ def run_case(num_edges, F, J, repeats, with_dense):
         "order2_nolow": lambda: DiffusionScattering(F, J, order=2, lowpass=False)(x, T),
         "order2_loop": lambda: order2_loop(T, x, J),
     }
-    rows = []
-
-    def record(name, fn, reference):
-        stats = time_stats(fn, repeats=repeats, warmup=1)
-        t = stats["min"]
-        rows.append({"E": num_edges, "N": n, "case": name, "best_s": t, "median_s": stats["median"],
-                     "x_2^J": t / unit, "x_inherent": t / reference})
-
     for name, fn in layers.items():
-        with torch.no_grad():
-            record(name, fn, inherent[name])
-    xg = x.clone().requires_grad_(True)
-    layer = DiffusionScattering(F, J, order=1)
+        if not reduced or name in REDUCED:
+            cases[name] = (fn, False)
+    if not reduced:
+        xg = x.clone().requires_grad_(True)
+        layer = DiffusionScattering(F, J, order=1)
 
-    def fwd_bwd():
-        layer(xg, T).sum().backward()
+        def fwd_bwd():
+            layer(xg, T).sum().backward()
 
-    # reference: the forward products twice over (a Hermitian backward is the same products again)
-    record("order1_fwd_bwd", fwd_bwd, 2 * inherent["order1"])
+        cases["order1_fwd_bwd"] = (fwd_bwd, True)
     if with_dense and n <= DENSE_LIMIT:
         D = T.to_dense()
 
@@ -138,16 +131,41 @@ def run_case(num_edges, F, J, repeats, with_dense):
                 u1 = D @ u1
             return torch.cat([ys[-1], u1], 1)
 
-        with torch.no_grad():
-            record("dense_order1", dense_order1, inherent["order1"])
-    info = {"E": num_edges, "N": n, "nnz": T.nnz, "setup_seconds": setup,
-            "product_seconds": prod, "F": F, "J": J}
+        cases["dense_order1"] = (dense_order1, False)
+    times = {name: [] for name in cases}
+    for rnd in range(repeats + 1):  # round 0 is the warm-up
+        for name, (fn, grad) in cases.items():
+            with torch.set_grad_enabled(grad):
+                t1 = time.perf_counter()
+                fn()
+                dt = time.perf_counter() - t1
+            if rnd:
+                times[name].append(dt)
+    best = {name: min(v) for name, v in times.items()}
+    unit = best["chain F"]
+    cF, c1, c2 = best["chain F"], best["chain (J+1)F"], best["chain J(J+1)F/2"]
+    inherent = {
+        "chain F": cF, "chain (J+1)F": c1, "chain J(J+1)F/2": c2,
+        "wavelets": cF,
+        "order1": cF + c1,
+        "order1_nolow": cF,
+        "order2": cF + c1 + c2,
+        "order2_nolow": cF + c1,  # second pass has width J F, bounded by (J + 1) F
+        "order2_loop": cF + (J + 1) * cF + (J * (J + 1) // 2) * cF,
+        "order1_fwd_bwd": 2 * (cF + c1),  # a Hermitian backward repeats the forward products
+        "dense_order1": cF + c1,
+    }
+    rows = [{"E": num_edges, "N": n, "case": name, "best_s": best[name],
+             "median_s": statistics.median(times[name]), "x_2^J": best[name] / unit,
+             "x_inherent": best[name] / inherent[name]} for name in cases]
+    info = {"E": num_edges, "N": n, "nnz": T.nnz, "setup_seconds": setup, "F": F, "J": J,
+            "rounds": repeats}
     return rows, info
 
 
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("--quick", action="store_true", help="two small graphs, a few seconds")
+    parser.add_argument("--quick", action="store_true", help="one small graph (N = 4096), a few seconds")
     parser.add_argument("--features", type=int, default=8)
     parser.add_argument("--scales", type=int, default=3)
     parser.add_argument("--threads", type=int, default=2)
@@ -155,7 +173,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
     torch.set_num_threads(args.threads)
     if args.quick:
-        grid, repeats = [4096 * 10, 100_000], 5
+        grid, repeats = [4096 * 10], 5
     else:
         grid, repeats = [4096 * 10, 100_000, 1_000_000, 10_000_000], 7
     start = time.perf_counter()
@@ -163,20 +181,28 @@ def main(argv=None):
     for i, num_edges in enumerate(grid):
         elapsed = time.perf_counter() - start
         # a 10x larger graph costs about 10x the last one: skip it when that would pass the budget
-        if not args.quick and infos and elapsed + 10 * infos[-1]["case_seconds"] > args.budget:
-            stopped = f"stopped before E = {num_edges}: {elapsed:.0f} s spent, the next size would pass the {args.budget:.0f} s budget"
-            break
+        # sizes above 1e6 edges run the main cases only, one timed round after the warm-up
+        big = num_edges > 1_000_000
+        reps = repeats if num_edges <= 100_000 else (3 if not big else 1)
+        if not args.quick and infos:
+            # a 10x larger graph costs about 10x per round; skip it if that would pass the budget
+            estimate = 10 * infos[-1]["round_seconds"] * (reps + 1) * (0.7 if big else 1.0)
+            if elapsed + estimate > args.budget:
+                stopped = (f"stopped before E = {num_edges}: {elapsed:.0f} s spent, that size needs about "
+                           f"{estimate:.0f} s more, past the {args.budget:.0f} s budget")
+                break
         t0 = time.perf_counter()
-        r, info = run_case(num_edges, args.features, args.scales, repeats if num_edges <= 100_000 else 3,
-                           with_dense=True)
+        r, info = run_case(num_edges, args.features, args.scales, reps, with_dense=True, reduced=big)
         info["case_seconds"] = time.perf_counter() - t0
+        info["round_seconds"] = info["case_seconds"] / (reps + 1)
+        info["cases"] = "main cases only" if big else "all cases"
         rows += r
         infos.append(info)
     print_table(rows, ["E", "N", "case", "best_s", "median_s", "x_2^J", "x_inherent"],
                 title=f"Scattering cost (F = {args.features}, J = {args.scales}, float32, torch threads {args.threads})")
     for info in infos:
         print(f"E = {info['E']}: nnz(T) = {info['nnz']}, setup {info['setup_seconds']:.2f} s, "
-              f"one product: " + ", ".join(f"{k} {v * 1e3:.3g} ms" for k, v in info["product_seconds"].items()))
+              f"{info['rounds']} timed rounds ({info['cases']})")
     if stopped:
         print(stopped)
     write_results("scattering", {"quick": args.quick, "features": args.features, "scales": args.scales,

@@ -13,7 +13,6 @@ through each sparse product together, never in a Python loop over channels.
 
 from __future__ import annotations
 
-import math
 import numbers
 from typing import Optional, Sequence
 
@@ -260,8 +259,7 @@ class ScaleSelector(nn.Module):
         T, scale = _check_diffusion_operator(op)
         x = _check_node_features(x, T.num_rows)
         powers = torch.stack(_diffusion_powers(T, scale, x, range(self.max_steps + 1)), dim=1)  # (N, t+1, F)
-        F = self.selection
-        F = F.to(powers.dtype) if powers.is_complex() else F.to(powers.dtype)
+        F = self.selection.to(powers.dtype)  # real weights; cast to complex for a magnetic T
         boundaries = torch.einsum("ntf,jt->njf", powers, F)  # (N, S, F)
         parts = torch.cat([x.unsqueeze(1).to(boundaries.dtype), boundaries], dim=1)  # B_0 = I, B_1..B_S
         bands = parts[:, :-1] - parts[:, 1:]
