@@ -18,7 +18,8 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-OUTPUT = Path(__file__).resolve().parent / "output"
+# PNG files go here; the smoke tests point PHASORGRAPH_TUTORIAL_OUTPUT at a temporary folder
+OUTPUT = Path(os.environ.get("PHASORGRAPH_TUTORIAL_OUTPUT") or Path(__file__).resolve().parent / "output")
 
 
 # ---------------------------------------------------------------------- arguments
@@ -149,7 +150,8 @@ def train_classifier(model: torch.nn.Module, logits_fn: Callable[[], torch.Tenso
         loss.backward()
         opt.step()
         loss = loss.detach()
-        if epoch % eval_every == 0 or epoch == epochs:
+        logging = bool(log_every) and (epoch % log_every == 0 or epoch == epochs)
+        if epoch % eval_every == 0 or epoch == epochs or logging:
             model.eval()
             with torch.no_grad():
                 out = logits_fn()
@@ -159,9 +161,8 @@ def train_classifier(model: torch.nn.Module, logits_fn: Callable[[], torch.Tenso
                 best = {"val": val, "test": test, "epoch": epoch}
             if on_eval is not None:
                 on_eval(epoch)
-        if log_every and (epoch % log_every == 0 or epoch == epochs):
-            print(f"    {name:28s} epoch {epoch:4d}/{epochs}  loss {float(loss):.3f}  "
-                  f"val acc {history[-1][2] if history else float('nan'):.3f}  "
+        if logging:
+            print(f"    {name:28s} epoch {epoch:4d}/{epochs}  loss {float(loss):.3f}  val acc {history[-1][2]:.3f}  "
                   f"{time.perf_counter() - t0:5.1f} s", flush=True)
     best["seconds"] = time.perf_counter() - t0
     best["history"] = history
