@@ -198,3 +198,12 @@ def test_property_no_held_out_pair_reaches_the_training_graph(graph, task, seed)
                 assert (u, v) not in full and (v, u) not in full and u != v
     kept_loops = {(u, v) for u, v in full if u == v}
     assert kept_loops <= train
+
+
+def test_reverse_edge_lookup_matches_a_dictionary(full_graph):
+    from phasorgraph.data.splits import _reverse_edges
+
+    src, dst = full_graph.source.numpy(), full_graph.target.numpy()
+    position = {(u, v): i for i, (u, v) in enumerate(zip(src.tolist(), dst.tolist()))}
+    expected = [position.get((v, u), -1) for u, v in zip(src.tolist(), dst.tolist())]
+    assert _reverse_edges(src, dst, full_graph.num_nodes).tolist() == expected

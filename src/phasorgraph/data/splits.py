@@ -13,11 +13,12 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import scipy.sparse as sp
 import torch
 
 from ..errors import GraphInputError
 from ..graph import DirectedGraph
-from .generators import _index_from_pair, _num_pairs, _pair_from_index, _rng, _sample_avoiding
+from .generators import _index_from_pair, _num_pairs, _pair_from_index, _rng, _sample_avoiding, _sample_distinct
 
 __all__ = ["NodeSplit", "LinkSet", "LinkSplit", "split_nodes", "split_links"]
 
@@ -116,9 +117,46 @@ def split_nodes(labels: Any, train: float = 0.6, val: float = 0.2, seed: Any = N
 
 # ---------------------------------------------------------------------- links
 def _link_set(pos_src, pos_dst, neg_src, neg_dst) -> LinkSet:
-    pairs = np.stack([np.concatenate([pos_src, neg_src]), np.concatenate([pos_dst, neg_dst])]).astype(np.int64)
+    pairs = np.stack([np.concatenate([pos_src, neg_src]), np.concatenate([pos_dst, neg_dst])]).astype(np.int64, copy=False)
     labels = np.concatenate([np.ones(pos_src.size, np.int64), np.zeros(neg_src.size, np.int64)])
     return LinkSet(torch.as_tensor(pairs), torch.as_tensor(labels))
+
+
+def _three_way(rng, items: np.ndarray, first: int, second: int):
+    """A uniformly random split of ``items`` into parts of sizes first, second and the rest.
+
+    The rest keeps the order of ``items`` (sequential memory access on large arrays).
+    """
+    picked = _sample_distinct(rng, items.size, first + second)
+    picked = picked[rng.permutation(picked.size)]
+    rest = np.ones(items.size, dtype=bool)
+    rest[picked] = False
+    return items[picked[:first]], items[picked[first:]], items[rest]
+
+
+def _reverse_edges(src: np.ndarray, dst: np.ndarray, n: int) -> np.ndarray:
+    """For each canonical edge u -> v, the index of the edge v -> u, or -1 if there is none.
+
+    The canonical edges (sorted by source, then target) are exactly the CSR order of A, so A is
+    built without sorting, with value ``index + 1``; A^T (a counting sort in scipy) carries the
+    index of each reverse edge, and the elementwise products with the other's pattern (sorted
+    merges) align both on the edges that have a reverse. O(N + E), no random-access search.
+    """
+    e = src.size
+    rev = np.full(e, -1, dtype=np.int64)
+    if e == 0:
+        return rev
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(src, minlength=n), out=indptr[1:])
+    a = sp.csr_matrix((np.arange(1, e + 1, dtype=np.float64), dst, indptr), shape=(n, n))
+    at = a.T.tocsr()
+    pattern_a, pattern_at = a.copy(), at.copy()
+    pattern_a.data[:] = 1.0
+    pattern_at.data[:] = 1.0
+    own = a.multiply(pattern_at).tocsr()  # index + 1 of each edge that has a reverse
+    other = at.multiply(pattern_a).tocsr()  # index + 1 of that reverse, same positions
+    rev[own.data.astype(np.int64) - 1] = other.data.astype(np.int64) - 1
+    return rev
 
 
 def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: float = 0.1,
@@ -174,27 +212,22 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
     n = graph.num_nodes
     src, dst = graph.source.numpy(), graph.target.numpy()
     off = src != dst
-    lo = np.minimum(src, dst)[off]
-    hi = np.maximum(src, dst)[off]
-    key = lo * max(n, 1) + hi
-    links, first, edge_link, count = np.unique(key, return_index=True, return_inverse=True, return_counts=True)
-    reciprocal = count == 2
-    # orientation of each link's representative edge: the edge itself for one-way links,
-    # low -> high for reciprocal ones (the first of its two edges in key order is arbitrary)
-    link_src = np.where(reciprocal, lo[first], src[off][first])
-    link_dst = np.where(reciprocal, hi[first], dst[off][first])
-    eligible = np.arange(links.size) if task == "existence" else np.flatnonzero(~reciprocal)
-    chosen = eligible[rng.permutation(eligible.size)]
-    n_val = int(round(fr_val * chosen.size))
-    n_test = int(round(fr_test * chosen.size))
-    val_ids, test_ids = chosen[:n_val], chosen[n_val:n_val + n_test]
-    train_ids = chosen[n_val + n_test:]
+    rev = _reverse_edges(src, dst, n)
+    has_rev = off & (rev >= 0)
+    # one representative edge per link: the edge itself for a one-way link, the low -> high
+    # edge of a reciprocal link
+    link_edges = np.flatnonzero(off & ((src < dst) | ~has_rev))
+    reciprocal = has_rev[link_edges]
+    link_src, link_dst = src[link_edges], dst[link_edges]
+    eligible = np.arange(link_edges.size) if task == "existence" else np.flatnonzero(~reciprocal)
+    n_val = int(round(fr_val * eligible.size))
+    n_test = int(round(fr_test * eligible.size))
+    val_ids, test_ids, train_ids = _three_way(rng, eligible, n_val, n_test)
 
-    held = np.zeros(links.size, dtype=bool)
-    held[val_ids] = True
-    held[test_ids] = True
+    held = np.concatenate([val_ids, test_ids])
     keep = np.ones(src.size, dtype=bool)
-    keep[np.flatnonzero(off)[held[edge_link]]] = False
+    keep[link_edges[held]] = False
+    keep[rev[link_edges[held[reciprocal[held]]]]] = False  # the other direction of reciprocal links
     train_graph = graph.subgraph_edges(torch.as_tensor(keep))
 
     if task == "direction":
@@ -206,15 +239,16 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
     sizes = [train_ids.size, val_ids.size, test_ids.size]
     total = sum(sizes)
     if total:
-        taken = np.sort(_index_from_pair(links // max(n, 1), links % max(n, 1), n))
+        taken = np.sort(_index_from_pair(link_src, link_dst, n))
         free = _num_pairs(n) - taken.size
         if total > free:
             raise GraphInputError(
                 f"graph has only {free} non-adjacent node pairs but the existence task needs {total} "
                 f"negatives (one per link); the graph is too dense for balanced negatives"
             )
-        neg = _sample_avoiding(rng, _num_pairs(n), total, taken)
-        neg = neg[rng.permutation(neg.size)]
+        neg_val, neg_test, neg_train = _three_way(rng, _sample_avoiding(rng, _num_pairs(n), total, taken),
+                                                  sizes[1], sizes[2])
+        neg = np.concatenate([neg_train, neg_val, neg_test])
         nlo, nhi = _pair_from_index(neg, n)
         flip = rng.random(neg.size) < 0.5
         neg_src, neg_dst = np.where(flip, nhi, nlo), np.where(flip, nlo, nhi)
