@@ -192,3 +192,53 @@ def test_refuses_wrong_features_and_laplacian():
     lap = operators.magnetic_laplacian(_graph(), 0.25, dtype=torch.complex128)
     with pytest.raises(GraphInputError, match=r"spectrum in \[0, 1\].*magnetic_laplacian.*operators\.diffusion"):
         layer(torch.zeros(7, 3, dtype=torch.float64), lap)
+
+
+# ---------------------------------------------------------------------- module conventions, all band-pass layers
+def _band_layers(**kw):
+    from phasorgraph.nn import BandMix, DiffusionWavelets, MomentReadout, ScaleSelector
+
+    return [
+        ("wavelets", DiffusionWavelets(2), "op"),
+        ("selector", ScaleSelector(4, 2, **kw), "op"),
+        ("scattering", DiffusionScattering(3, 2, order=2, out_channels=4, **kw), "op"),
+        ("bandmix", BandMix(3, 4, (1, 2), 2, **kw), "graph"),
+        ("readout", MomentReadout(4), "none"),
+    ]
+
+
+def _call(layer, how, x, graph):
+    if how == "op":
+        return layer(x, operators.diffusion(graph, dtype=torch.float64))
+    if how == "graph":
+        return layer(x, graph)
+    return layer(x)
+
+
+def test_factory_kwargs_pickle_state_dict_and_non_contiguous_input():
+    import pickle
+
+    g = _graph()
+    x = _x()
+    x_nc = torch.randn(3, 7, dtype=torch.float64).T  # non-contiguous (7, 3)
+    fresh_layers = [layer for _, layer, _ in _band_layers(dtype=torch.float64)]
+    for (name, layer, how), fresh in zip(_band_layers(dtype=torch.float64), fresh_layers):
+        assert all(p.dtype == torch.float64 for p in layer.parameters()), name
+        clone = pickle.loads(pickle.dumps(layer))
+        torch.testing.assert_close(_call(clone, how, x, g), _call(layer, how, x, g))
+        fresh.load_state_dict(layer.state_dict())
+        torch.testing.assert_close(_call(fresh, how, x, g), _call(layer, how, x, g))
+        torch.testing.assert_close(_call(layer, how, x_nc, g), _call(layer, how, x_nc.contiguous(), g))
+
+
+def test_scale_selector_permutation_equivariant():
+    from phasorgraph.nn import ScaleSelector
+
+    g = _graph()
+    perm = torch.tensor([6, 3, 0, 5, 1, 4, 2])
+    layer = ScaleSelector(6, 3, dtype=torch.float64)
+    x = _x()
+    with torch.no_grad():
+        out = layer(x, operators.random_walk(g, dtype=torch.float64))
+        out_p = layer(x[perm], operators.random_walk(g.permute(perm), dtype=torch.float64))
+    torch.testing.assert_close(out_p, out[perm], atol=1e-12, rtol=0)
