@@ -520,9 +520,8 @@ def test_empty_and_edgeless_graphs_give_no_nan(num_nodes):
         M = op.to_dense()
         assert M.shape == (num_nodes, num_nodes), name
         assert not torch.isnan(M).any() and not torch.isinf(M).any(), name
-        if num_nodes:  # the 0-node product is test_product_on_zero_node_graph (known bug)
-            y = op @ torch.ones(num_nodes, 2, dtype=op.dtype)
-            assert y.shape == (num_nodes, 2) and not torch.isnan(y).any(), name
+        y = op @ torch.ones(num_nodes, 2, dtype=op.dtype)
+        assert y.shape == (num_nodes, 2) and not torch.isnan(y).any(), name
     if num_nodes:
         eye = np.eye(num_nodes)
         np.testing.assert_allclose(_dense(ops["normalized"]), eye)  # diagonal 1 at isolated nodes
@@ -533,12 +532,3 @@ def test_empty_and_edgeless_graphs_give_no_nan(num_nodes):
         np.testing.assert_allclose(_dense(ops["random_walk"]), 0 * eye)
         # edgeless PageRank walk is uniform: L = I - J / n (Chung 2005 with pi uniform)
         np.testing.assert_allclose(_dense(ops["pagerank"]), eye - 1 / num_nodes, atol=1e-12)
-
-
-@pytest.mark.xfail(strict=True, raises=RuntimeError,
-                   reason="sparse._apply reshapes with (n, -1), ambiguous when n = 0; needs "
-                          "reshape(n, prod(x.shape[1:])) in sparse.py (reported to its owner)")
-def test_product_on_zero_node_graph():
-    g = DirectedGraph.from_edges(np.zeros((2, 0), dtype=np.int64))
-    y = normalized_laplacian(g, dtype=F64) @ torch.ones(0, 2, dtype=F64)
-    assert y.shape == (0, 2)

@@ -146,15 +146,20 @@ class DirectedGraph:
 
     @staticmethod
     def _canonical(src, dst, w, n):
-        """Sum duplicates, drop zeros, sort by (source, target); vectorized over edges."""
+        """Sum duplicates, drop zeros, sort by (source, target); vectorized over edges.
+
+        scipy's COO -> CSR conversion groups the edges by source with a counting pass and
+        ``sum_duplicates`` sorts each (short) row and adds repeats, all in compiled code and
+        without a global sort of the E keys.
+        """
         if src.numel() == 0:
             return src, dst, w
-        key = src * max(n, 1) + dst
-        uniq, inverse = torch.unique(key, sorted=True, return_inverse=True)
-        summed = torch.zeros(uniq.numel(), dtype=torch.float64).index_add_(0, inverse, w)
-        keep = summed != 0
-        uniq, summed = uniq[keep], summed[keep]
-        return (uniq // max(n, 1)).contiguous(), (uniq % max(n, 1)).contiguous(), summed.contiguous()
+        m = sp.csr_matrix((w.numpy(), (src.numpy(), dst.numpy())), shape=(n, n))
+        m.sum_duplicates()
+        m.eliminate_zeros()
+        rows = np.repeat(np.arange(n, dtype=np.int64), np.diff(m.indptr))
+        return (torch.from_numpy(rows), torch.from_numpy(m.indices.astype(np.int64)),
+                torch.from_numpy(m.data.astype(np.float64, copy=False)))
 
     # ------------------------------------------------------------------ properties
     @property
