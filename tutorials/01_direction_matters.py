@@ -27,8 +27,9 @@ magnitude through A_s. With ``phase="difference"`` the phase is 2 pi q (A - A^T)
 with almost no phase. "sign" keeps the direction signal of every lane at full strength.
 
 Reading the results. Magnetic scattering takes moduli: reversing every lane conjugates T(q)
-and leaves every |.| unchanged, so with real input features it can tell through-depots
-(hubs, warehouses) from end depots, but terminals from outlets only through the features.
+and leaves every |.| unchanged, so with real input features it cannot see which way goods
+flow. A terminal and an outlet whose lanes mirror each other get the same coefficients; what
+it does see is the mix of in- and out-lanes (through-depots against end depots).
 The magnetic filters keep real and imaginary parts (ComplexToReal "cartesian") and so see
 which way goods flow.
 
@@ -214,6 +215,7 @@ def main(argv=None) -> None:
                 if hasattr(model, "charges") and model.conv1.learn_charge:
                     trace.append((epoch, [float(q) for q in torch.cat(model.charges())]))
 
+            record(0)
             res = C.train_classifier(model, lambda: model(x, graph), labels, split.train, split.val, split.test,
                                      epochs=epochs, eval_every=10, log_every=(epochs // 5 if run == 0 else 0),
                                      name=f"{name} (run 1)", on_eval=record)
@@ -249,6 +251,7 @@ def main(argv=None) -> None:
         stds = [float(torch.tensor(results[n][0]).std()) if len(results[n][0]) > 1 else 0.0 for n in names]
         ax1.barh(names, means, xerr=stds, color=["#999999" if "Magnetic" not in n else "#2a7ab9" for n in names])
         ax1.axvline(0.25, color="k", lw=0.8, ls=":")
+        ax1.text(0.255, len(names) - 0.6, "chance", fontsize=8)
         ax1.set_xlabel("test accuracy (mean +- std)")
         ax1.set_xlim(0, 1)
         ax1.invert_yaxis()

@@ -89,6 +89,7 @@ def train_lanes(model, x, split, *, epochs, lr=0.01, weight_decay=5e-4, eval_eve
         loss = F.binary_cross_entropy_with_logits(logits, train_y)
         loss.backward()
         opt.step()
+        loss = loss.detach()
         if epoch % eval_every == 0 or epoch == epochs:
             model.eval()
             with torch.no_grad():
@@ -149,7 +150,8 @@ def main(argv=None) -> None:
                          f"{sum(r['seconds'] for r in res) / len(res):.1f}"))
     C.print_table(f"Held-out lanes, test metrics over {runs} run(s) ({net.num_depots} depots, {epochs} epochs; "
                   f"chance: AUC 0.5, accuracy 0.5)",
-                  ["task", "model", "test AUC", "test accuracy", "q (layer 1 / 2)", "parameters", "train s/run"], rows)
+                  ["task", "model", "test AUC", "test accuracy", "q (layer 1 / 2)", "parameters", "train s/run"], rows,
+                  left=2)
     print(f"\nmachine: {C.machine_line()}")
     print(f"total time {time.perf_counter() - t_start:.1f} s")
 

@@ -16,10 +16,12 @@ the depot's total volume. Two operators are compared: the symmetric diffusion
 ``operators.diffusion(graph)`` and the magnetic one ``operators.diffusion(graph, charge=0.25,
 phase="sign")``.
 
-Note. Scattering takes moduli, so with real inputs it cannot tell a network from the same
-network with every lane reversed (that conjugates T(q) and leaves every modulus unchanged); a
-"collection tree" family (a distribution tree run backwards) would need inputs that carry
-direction, such as in- and out-volume.
+Reading the results. The three families already differ in their undirected shape (a tree,
+a ring, stars), so both operators separate them well; the magnetic operator is not needed
+here. Note that scattering takes moduli, so with real inputs it cannot tell a network from
+the same network with every lane reversed (that conjugates T(q) and leaves every modulus
+unchanged); a "collection tree" family (a distribution tree run backwards) would need inputs
+that carry direction, such as in- and out-volume.
 
 Results: test accuracy (a held-out 20 % of the networks), mean +- std over 3 runs, with
 parameter counts and training time.

@@ -93,22 +93,22 @@ def mean_std(values: Sequence[float], digits: int = 3) -> str:
     return f"{v.mean():.{digits}f} +- {v.std(ddof=1):.{digits}f}"
 
 
-def format_table(headers: Sequence[str], rows: Sequence[Sequence[object]]) -> str:
-    """A plain-text table, first column left-aligned, the others right-aligned."""
+def format_table(headers: Sequence[str], rows: Sequence[Sequence[object]], left: int = 1) -> str:
+    """A plain-text table, the first ``left`` columns left-aligned, the others right-aligned."""
     cells = [[str(h) for h in headers]] + [[str(c) for c in r] for r in rows]
     widths = [max(len(r[i]) for r in cells) for i in range(len(headers))]
 
     def line(r):
-        return "  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(r, widths)))
+        return "  ".join(c.ljust(w) if i < left else c.rjust(w) for i, (c, w) in enumerate(zip(r, widths)))
 
     rule = "  ".join("-" * w for w in widths)
     return "\n".join([line(cells[0]), rule] + [line(r) for r in cells[1:]])
 
 
-def print_table(title: str, headers: Sequence[str], rows: Sequence[Sequence[object]]) -> None:
+def print_table(title: str, headers: Sequence[str], rows: Sequence[Sequence[object]], left: int = 1) -> None:
     print()
     print(title)
-    print(format_table(headers, rows))
+    print(format_table(headers, rows, left))
 
 
 def missing_layer(*names: str) -> Optional[str]:
