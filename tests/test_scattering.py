@@ -8,9 +8,12 @@ numpy.linalg.matrix_power wavelets and numpy.abs, channel by channel (no stackin
 import numpy as np
 import pytest
 import torch
+from hypothesis import given
+from hypothesis import strategies as st
 
 from phasorgraph import DirectedGraph, GraphInputError, operators
 from phasorgraph.nn import DiffusionScattering
+from strategies import charges, directed_graphs, features
 
 
 @pytest.fixture(autouse=True)
@@ -160,6 +163,22 @@ def test_isolated_nodes_no_nan():
     for op in (operators.diffusion(g), operators.diffusion(g, charge=0.25), operators.random_walk(g)):
         out = DiffusionScattering(2, 3, order=2)(torch.ones(4, 2), op)
         assert torch.isfinite(out).all()
+
+
+@given(graph=directed_graphs(min_nodes=1, max_nodes=9, unit_weights=True), data=st.data(),
+       J=st.integers(1, 4), order=st.sampled_from([1, 2]), magnetic=st.booleans(), charge=charges())
+def test_scattering_is_non_expansive(graph, data, J, order, magnetic, charge):
+    # ||S x - S y|| <= ||x - y||: the wavelet frame has upper bound 1 and the modulus is
+    # non-expansive (S. Mallat, Group invariant scattering, CPAM 2012; the diffusion case in
+    # Gama, Ribeiro & Bruna 2019). Holds for every order with our layout (j2 > j1 only).
+    n = graph.num_nodes
+    op = (operators.diffusion(graph, charge=charge, dtype=torch.complex128) if magnetic
+          else operators.diffusion(graph, dtype=torch.float64))
+    x = data.draw(features(n, 2))
+    y = data.draw(features(n, 2))
+    layer = DiffusionScattering(2, J, order=order)
+    gap = float(((layer(x, op) - layer(y, op)) ** 2).sum())
+    assert gap <= float(((x - y) ** 2).sum()) * (1 + 1e-9) + 1e-12
 
 
 # ---------------------------------------------------------------------- bad input
