@@ -171,7 +171,7 @@ def _sample_few(rng: np.random.Generator, m: int, k: int) -> np.ndarray:
     """
     found = np.empty(0, dtype=np.int64)
     while found.size < k:
-        have, want, left = found.size, k - found.size, m - found.size
+        want, left = k - found.size, m - found.size
         draws = int(math.ceil(-left * math.log1p(-want / left) * 1.02)) + 16
         found = _sorted_unique(np.concatenate([found, rng.integers(0, m, size=draws, dtype=np.int64)]))
     if found.size > k:
