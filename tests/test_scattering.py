@@ -158,6 +158,14 @@ def test_scattering_gradcheck(kind):
     assert torch.autograd.gradcheck(fn, (x, params["weight"], params["bias"]), fast_mode=op.is_complex)
 
 
+def test_empty_graph_gives_empty_output():
+    empty = DirectedGraph.from_edges(np.zeros((2, 0), dtype=np.int64), num_nodes=0)
+    for op in (operators.diffusion(empty), operators.diffusion(empty, charge=0.25), operators.random_walk(empty)):
+        for order in (1, 2):
+            out = DiffusionScattering(2, 2, order=order, out_channels=3)(torch.zeros(0, 2), op)
+            assert out.shape == (0, 3)
+
+
 def test_isolated_nodes_no_nan():
     g = DirectedGraph.from_edges([[0], [1]], num_nodes=4)
     for op in (operators.diffusion(g), operators.diffusion(g, charge=0.25), operators.random_walk(g)):

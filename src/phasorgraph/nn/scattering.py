@@ -153,21 +153,22 @@ class DiffusionScattering(nn.Module):
         blocks = [zeroth.unsqueeze(1)]
         if self.order == 1:
             if self.lowpass:
-                (low,) = _diffusion_powers(T, scale, u1.reshape(n, -1), [2 ** J])
+                (low,) = _diffusion_powers(T, scale, u1.reshape(n, (J + 1) * F), [2 ** J])
                 blocks.append(_real(low).reshape(n, J + 1, F))
             else:
                 blocks.append(u1)
             return torch.cat(blocks, dim=1)
         # order 2: one wavelet pass on the whole (N, width * F) block of first-order moduli
         width = J + 1 if self.lowpass else J  # |Psi_J x| has no j2 > J; keep it only for its low-pass
-        second = _dyadic_bands(T, scale, u1[:, :width].reshape(n, -1), J).reshape(n, J + 2, width, F)
+        second = _dyadic_bands(T, scale, u1[:, :width].reshape(n, width * F), J).reshape(n, J + 2, width, F)
         pairs_j1 = [j1 for j1 in range(J + 1) for j2 in range(j1 + 1, J + 1)]
         pairs_j2 = [j2 for j1 in range(J + 1) for j2 in range(j1 + 1, J + 1)]
         u2 = _modulus(second[:, pairs_j2, pairs_j1])  # (N, P, F), P = J (J + 1) / 2
+        P = len(pairs_j1)
         if self.lowpass:
             blocks.append(_real(second[:, -1]))  # Phi_J |Psi_j x|, j = 0..J, from the same pass
-            (low2,) = _diffusion_powers(T, scale, u2.reshape(n, -1), [2 ** J])
-            blocks.append(_real(low2).reshape(n, -1, F))
+            (low2,) = _diffusion_powers(T, scale, u2.reshape(n, P * F), [2 ** J])
+            blocks.append(_real(low2).reshape(n, P, F))
         else:
             blocks.append(u1)
             blocks.append(u2)
@@ -175,7 +176,7 @@ class DiffusionScattering(nn.Module):
 
     def forward(self, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
         c = self.coefficients(x, op)
-        c = c.reshape(c.shape[0], -1)
+        c = c.reshape(c.shape[0], c.shape[1] * c.shape[2])  # explicit: N may be 0
         if self.weight is None:
             return c
         return nn.functional.linear(c, self.weight, self.bias)
