@@ -303,3 +303,14 @@ def test_bad_input_messages():
         values_matmul(crow, col, values, torch.ones(3, 1, dtype=REAL))
     with pytest.raises(GraphInputError, match="x has dtype torch.complex64 but values are torch.float64"):
         values_matmul(crow, col, values, torch.ones(N, 1, dtype=torch.complex64))
+
+
+def test_pickle_round_trip_after_products():
+    import copy
+    import pickle
+
+    op = _operator(_random_dense(N, COMPLEX, hermitian=False, seed=17), COMPLEX, hermitian=False)
+    x = _features((N, 2), COMPLEX).requires_grad_()
+    general_matmul(op, x).abs().sum().backward()  # fills the kernel and adjoint caches
+    for clone in (pickle.loads(pickle.dumps(op)), copy.deepcopy(op)):
+        torch.testing.assert_close(clone @ x.detach(), op @ x.detach(), rtol=0, atol=0)

@@ -36,7 +36,7 @@ _COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
 _SUPPORTED = (torch.float32, torch.float64, torch.complex64, torch.complex128)
 
 #: elements of the (chunk, F) temporaries in the sampled dense-dense product
-_SDDMM_CHUNK_ELEMENTS = 1 << 18
+_SDDMM_CHUNK_ELEMENTS = 1 << 19
 
 
 def csr_matrix(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, size: Sequence[int]) -> torch.Tensor:
@@ -142,6 +142,7 @@ class SparseOperator:
         state = dict(self.__dict__)
         state["matrix"] = (m.crow_indices(), m.col_indices(), m.values(), tuple(m.shape))
         state["_adjoint"] = None
+        state.pop("_kernel", None)  # the prepared real/imaginary parts are rebuilt on first use
         return state
 
     def __setstate__(self, state):
