@@ -184,7 +184,8 @@ def operator_bytes(nnz: int, n: int) -> int:
     return nnz * (8 + 8) + (n + 1) * 8
 
 
-def measure(num_edges: int, repeats: int, seed: int = 0) -> list:
+def measure(num_edges: int, repeats: int, seed: int = 0, with_baseline: bool = True) -> tuple:
+    """Rows for the fixed and the learned charge, and the seconds spent on (package, baseline)."""
     graph = random_graph(num_edges, seed)
     n = graph.num_nodes
     gen = torch.Generator().manual_seed(seed + 1)
@@ -193,6 +194,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0) -> list:
     grad_out = torch.complex(torch.randn(n, CHANNELS, generator=gen), torch.randn(n, CHANNELS, generator=gen))
     block = n * CHANNELS * 8
     rows = []
+    spent = {"package": 0.0, "baseline": 0.0}
     pattern_nnz = user_pattern(graph)[0].numel()
     for learned in (False, True):
         torch.manual_seed(seed)
@@ -207,6 +209,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0) -> list:
             layer.zero_grad(set_to_none=True)
             torch.autograd.backward(layer(x, graph), grad_out)
 
+        clock = time.perf_counter()
         package_step()                                     # builds and caches the operator
         op = None
         if not learned:
@@ -220,11 +223,17 @@ def measure(num_edges: int, repeats: int, seed: int = 0) -> list:
         if mem_pkg is not None and op is not None:
             mem_pkg += op_bytes                                # the cached operator is resident
         model = op_bytes + (ORDER + 2) * block
+        spent["package"] += time.perf_counter() - clock
+        clock = time.perf_counter()
 
         kind = "dense" if n <= DENSE_LIMIT else "gather_scatter"
         temp = (ORDER + 1) * nnz * CHANNELS * 8 if kind == "gather_scatter" else 2 * n * n * 8
         t_user = mem_user = None
-        if temp <= BASELINE_BYTES_LIMIT:
+        if kind == "gather_scatter" and not with_baseline:
+            kind = "skipped (time budget)"
+        elif temp > BASELINE_BYTES_LIMIT:
+            kind = "skipped (memory)"
+        else:
             user = user_layer(kind, graph, learned, layer)
 
             def user_step():
@@ -241,6 +250,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0) -> list:
             timing = timed_with_peak(user_step, repeats, MAX_SECONDS)
             t_user, mem_user = timing["median"], timing["peak"]
             del user
+        spent["baseline"] += time.perf_counter() - clock
         rows.append({
             "edges": graph.num_edges, "nodes": n, "nnz": nnz,
             "charge": "learned" if learned else "fixed",
@@ -255,7 +265,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0) -> list:
         })
         del layer, op
         gc.collect()
-    return rows
+    return rows, spent
 
 
 def main(argv=None) -> None:
@@ -270,24 +280,32 @@ def main(argv=None) -> None:
     if args.quick:
         sizes, repeats = [5_000], 2
     else:
-        sizes = [e for e in (40_000, 100_000, 300_000, 1_000_000, 3_000_000, 10_000_000) if e <= args.max_edges]
+        sizes = [e for e in (20_000, 100_000, 300_000, 1_000_000, 3_000_000, 10_000_000) if e <= args.max_edges]
         repeats = 3
     rows, skipped = [], []
     t0 = time.perf_counter()
-    last = None                      # (edges, seconds) of the last finished size
+    last = None                      # (edges, package seconds, baseline seconds) of the last size
     for e in sizes:
         elapsed = time.perf_counter() - t0
+        with_baseline = True
         if last is not None and not args.quick:
-            predicted = last[1] * e / last[0]
-            if elapsed + predicted > args.budget:
+            grow = e / last[0]
+            package_pred, baseline_pred = last[1] * grow, last[2] * grow
+            if elapsed + package_pred + baseline_pred > args.budget:
+                with_baseline = False
+            if elapsed + package_pred > args.budget:
                 skipped = [s for s in sizes if s >= e]
-                print(f"  stopping before {e:,d} edges: predicted {predicted:.0f} s would overrun the "
+                print(f"  stopping before {e:,d} edges: predicted {package_pred:.0f} s would overrun the "
                       f"{args.budget:.0f} s budget ({elapsed:.0f} s used)", flush=True)
                 break
         start = time.perf_counter()
-        rows.extend(measure(e, repeats))
-        last = (e, time.perf_counter() - start)
-        print(f"  {e:>10,d} edges done at {time.perf_counter() - t0:.0f} s", flush=True)
+        new_rows, spent = measure(e, repeats, with_baseline=with_baseline)
+        rows.extend(new_rows)
+        total = time.perf_counter() - start                  # setup included
+        baseline_s = spent["baseline"] if with_baseline else (last[2] * e / last[0] if last else 0.0)
+        last = (e, total - spent["baseline"], baseline_s)
+        print(f"  {e:>10,d} edges done at {time.perf_counter() - t0:.0f} s"
+              f"{'' if with_baseline else ' (baseline skipped: time budget)'}", flush=True)
     columns = ["edges", "nodes", "charge", "package_s", "baseline", "baseline_s", "speedup",
                "package_peak_MiB", "model_MiB", "peak_over_model", "baseline_peak_MiB", "memory_ratio"]
     print_table(rows, columns, title=f"MagneticFilter({CHANNELS}, {CHANNELS}, order={ORDER}) forward + backward, "

@@ -197,6 +197,15 @@ def _mix(t: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
     return t @ w
 
 
+def _add_bias(out: torch.Tensor, bias: Optional[torch.Tensor]) -> torch.Tensor:
+    """``out + bias``, in place when the dtypes allow (out is always a fresh, non-view tensor here)."""
+    if bias is None:
+        return out
+    if torch.promote_types(out.dtype, bias.dtype) == out.dtype:
+        return out.add_(bias)
+    return out + bias
+
+
 def _chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tensor], alpha: float, beta: float,
                    weights: torch.Tensor) -> torch.Tensor:
     r""":math:`\sum_k T_k W_k` with :math:`\tilde L t = \alpha P t + \beta t` and ``product`` applying P.
@@ -214,10 +223,18 @@ def _chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tens
     def add(out, term):
         return out.add_(term) if out.dtype == term.dtype else out + term
 
-    prev, cur = x, product(x).mul(alpha).add_(x, alpha=beta)
+    def scaled(t, a):
+        # a fresh tensor a * P t that may be changed in place (the sparse kernels return views,
+        # which autograd forbids changing in place; those get one copy through mul)
+        p = product(t)
+        if p._is_view():
+            return p.mul(a)
+        return p if a == 1 else p.mul_(a)
+
+    prev, cur = x, scaled(x, alpha).add_(x, alpha=beta)
     out = add(out, _mix(cur, weights[1]))
     for k in range(2, order + 1):
-        nxt = product(cur).mul(2 * alpha).add_(cur, alpha=2 * beta).sub_(prev)
+        nxt = scaled(cur, 2 * alpha).add_(cur, alpha=2 * beta).sub_(prev)
         prev, cur = cur, nxt
         out = add(out, _mix(cur, weights[k]))
     return out
@@ -394,8 +411,7 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
         if w.is_complex() and not x.is_complex():
             x = x.to(w.dtype)
         out = _chebyshev_sum(x, op.matmul, 2.0 / lam, -1.0, w)
-        b = self._bias()
-        return out if b is None else out + b
+        return _add_bias(out, self._bias())
 
 
 # ---------------------------------------------------------------------- renormalized
@@ -484,9 +500,9 @@ class RenormalizedFilter(_CachedOperators, nn.Module):
         if op.num_rows == 0:
             return _empty_output(x, self.out_channels, _output_dtype(x, self.weight), self.parameters())
         if self.out_channels < self.in_channels:
-            out = op @ _bilinear(torch.matmul, x, self.weight)
+            out = op @ _mix(x, self.weight)
         else:
-            out = _bilinear(torch.matmul, op @ x, self.weight)
+            out = _mix(op @ x, self.weight)
         return out if self.bias is None else out + self.bias
 
 

@@ -15,6 +15,7 @@ from ..operators import magnetic_laplacian, magnetic_matmul
 from .filters import (
     _COMPLEX_OF,
     _CachedOperators,
+    _add_bias,
     _OperatorCache,
     _check_count,
     _check_features,
@@ -237,6 +238,6 @@ class MagneticFilter(_CachedOperators, nn.Module):
             # L~ = L(q) - I: lmax = 2 for the normalized magnetic Laplacian
             groups.append(_chebyshev_sum(x, product, 1.0, -1.0, wg))
         out = groups[0] if len(groups) == 1 else torch.cat(groups, dim=1)
-        if self.bias is not None:
-            out = out + (_complex_view(self.bias) if self.complex_weights else self.bias)
-        return out
+        if self.bias is None:
+            return out
+        return _add_bias(out, _complex_view(self.bias) if self.complex_weights else self.bias)
