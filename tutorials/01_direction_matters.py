@@ -220,18 +220,15 @@ def main(argv=None) -> None:
             record(0)
             res = C.train_classifier(model, lambda: model(x, graph), labels, split.train, split.val, split.test,
                                      epochs=epochs, eval_every=10, log_every=(epochs // 5 if run == 0 else 0),
-                                     name=f"{name} (run 1)", on_eval=record)
+                                     name="run 1", on_eval=record)
             accs.append(res["test"])
             secs.append(res["seconds"])
             if trace:
                 learned.append(trace[-1][1])
                 if run == 0:
                     charge_traces[name] = trace
-            if run > 0:
-                print(f"    run {run + 1}: test acc {res['test']:.3f} (best val epoch {res['epoch']}, "
-                      f"{res['seconds']:.1f} s)", flush=True)
-            else:
-                print(f"    run 1: test acc {res['test']:.3f} (best val epoch {res['epoch']})", flush=True)
+            print(f"    run {run + 1}: test acc {res['test']:.3f} (best val epoch {res['epoch']}, "
+                  f"{res['seconds']:.1f} s)", flush=True)
         if learned:
             per_layer = torch.tensor(learned)  # (runs, layers)
             charge_text = " / ".join(f"{m:.3f}" for m in per_layer.mean(0).tolist())

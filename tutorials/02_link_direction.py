@@ -102,7 +102,7 @@ def train_lanes(model, x, split, *, epochs, lr=0.01, weight_decay=5e-4, eval_eve
                         "test_auc": C.auc(test.numpy(), split.test.labels.numpy()),
                         "test_acc": float(((test > 0).long() == split.test.labels).float().mean())}
             if log_every and (epoch % log_every == 0 or epoch == epochs):
-                print(f"    {name:30s} epoch {epoch:4d}/{epochs}  loss {float(loss):.3f}  val AUC {val_auc:.3f}  "
+                print(f"    {name} epoch {epoch:4d}/{epochs}  loss {float(loss):.3f}  val AUC {val_auc:.3f}  "
                       f"q {', '.join(f'{q:.3f}' for q in model.charges())}  {time.perf_counter() - t0:5.1f} s",
                       flush=True)
     best["seconds"] = time.perf_counter() - t0
@@ -139,7 +139,7 @@ def main(argv=None) -> None:
                 torch.manual_seed(seed)
                 model = LaneModel(x.shape[1], **kw)
                 r = train_lanes(model, x, split, epochs=epochs, log_every=(epochs // 4 if run == 0 else 0),
-                                name=f"{task}, {name}")
+                                name="run 1")
                 print(f"    run {run + 1}: test AUC {r['test_auc']:.3f}, accuracy {r['test_acc']:.3f} "
                       f"(best val epoch {r['epoch']}, {r['seconds']:.1f} s)", flush=True)
                 res.append(r)

@@ -97,7 +97,7 @@ def main(argv=None) -> None:
             model = cls(x.shape[1], 32, 4)
             res = C.train_classifier(model, lambda: call(model), labels, split.train, split.val, split.test,
                                      epochs=epochs, eval_every=10, log_every=(epochs // 4 if run == 0 else 0),
-                                     name=name)
+                                     name="run 1")
             accs.append(res["test"])
             secs.append(res["seconds"])
             print(f"    run {run + 1}: test acc {res['test']:.3f} ({res['seconds']:.1f} s)", flush=True)

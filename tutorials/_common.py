@@ -162,7 +162,7 @@ def train_classifier(model: torch.nn.Module, logits_fn: Callable[[], torch.Tenso
             if on_eval is not None:
                 on_eval(epoch)
         if logging:
-            print(f"    {name:28s} epoch {epoch:4d}/{epochs}  loss {float(loss):.3f}  val acc {history[-1][2]:.3f}  "
+            print(f"    {name} epoch {epoch:4d}/{epochs}  loss {float(loss):.3f}  val acc {history[-1][2]:.3f}  "
                   f"{time.perf_counter() - t0:5.1f} s", flush=True)
     best["seconds"] = time.perf_counter() - t0
     best["history"] = history
