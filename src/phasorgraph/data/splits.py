@@ -163,9 +163,10 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
                 test_fraction: float = 0.1, seed: Any = None) -> LinkSplit:
     r"""Leak-free link split for link existence or link direction prediction.
 
-    Links (unordered pairs of distinct nodes with an edge in at least one direction) are
-    shuffled; ``round(val_fraction * L)`` go to val, ``round(test_fraction * L)`` to test and
-    the rest to train, where L counts the links eligible for the task. ``train_graph`` is
+    Of the L links eligible for the task (unordered pairs of distinct nodes with an edge in at
+    least one direction), a uniformly random ``round(val_fraction * L)`` go to val, another
+    ``round(test_fraction * L)`` to test and the rest to train (in graph edge order; shuffle
+    the training pairs before mini-batching). ``train_graph`` is
     ``graph`` without every edge of the val and test links, in both directions (weights of
     the kept edges unchanged, same ``num_nodes``); self-loops always stay.
 
