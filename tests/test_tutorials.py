@@ -141,6 +141,14 @@ def test_freight_network_is_seeded_and_follows_its_specification():
     assert down.mean() > 0.55 and 0.05 < up.mean() < 0.4  # mostly down-tier, a share of returns
     assert w[down].mean() > 3 * w[up].mean()  # returns are small next to deliveries
     assert (w > 0).all() and a.features.shape == (600, 2)
+    # about the same number of lanes (in + out) per depot in every tier
+    lanes = np.bincount(a.graph.source.numpy(), minlength=600) + np.bincount(a.graph.target.numpy(), minlength=600)
+    per_tier = np.array([lanes[tier == k].mean() for k in range(4)])
+    assert per_tier.max() < 1.25 * per_tier.min()
+    # terminals mostly send, outlets mostly receive
+    out_lanes = np.bincount(a.graph.source.numpy(), minlength=600)
+    assert out_lanes[tier == 0].mean() > 0.6 * lanes[tier == 0].mean()
+    assert out_lanes[tier == 3].mean() < 0.4 * lanes[tier == 3].mean()
     assert torch.allclose(a.features.mean(0), torch.zeros(2), atol=1e-5)
 
 

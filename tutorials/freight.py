@@ -6,6 +6,8 @@ A regional freight network: depots in four tiers, shipments (lanes) between them
 * lanes flow mostly one tier down (u -> v with tier(v) = tier(u) + 1), some skip a tier, some
   are lateral transfers inside a tier, and a share of returns flows back up (as a small
   reverse lane next to a delivery lane, and as separate upward lanes);
+* every tier has about the same number of lanes per depot (in and out together), so lane
+  counts alone do not reveal the tier; only their direction does;
 * the edge weight of a lane is its shipment volume (pallets per month, lognormal, so a few
   lanes carry most of the volume);
 * node features carry no direction: a noisy log floor area and a noisy log staff count. Their
