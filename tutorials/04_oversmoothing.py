@@ -30,7 +30,11 @@ bias does not by itself make the features constant; mean over 3 initializations)
 
 Results: a table of the ratio by depth ("dead" where ReLU has zeroed every feature) and, with matplotlib, a log-scale plot
 (tutorials/output/04_oversmoothing.png). No training is involved: this is a property of the
-architecture at initialization; training can slow or speed the decay.
+architecture at initialization; training can slow or speed the decay. The RenormalizedFilter
+stack levels off a little above 0 rather than at 0 because the vector that A_hat keeps is
+proportional to sqrt(d + 1), not constant; features along it are still the same for every
+depot up to its degree. A stack can also "die": once a ReLU zeroes every feature, nothing
+is left to measure.
 
 Usage: python tutorials/04_oversmoothing.py [--quick] [--seed S] [--no-plot] [--raw-volumes]
 """
