@@ -232,9 +232,15 @@ class DirectedGraph:
 
     @classmethod
     def from_scipy(cls, matrix: Any) -> "DirectedGraph":
-        """Build from a square scipy sparse matrix (any format) or a dense 2-D array.
+        """Build from a square scipy sparse matrix or array (any format) or a dense 2-D array.
 
-        Entry (u, v) is an edge u -> v of weight ``matrix[u, v]``.
+        Entry (u, v) is an edge u -> v of weight ``matrix[u, v]``. Repeated COO entries are
+        summed and stored zeros dropped, as for every DirectedGraph.
+
+        Example:
+            >>> import numpy as np
+            >>> DirectedGraph.from_scipy(np.array([[0.0, 2.0], [0.0, 1.0]])).weight.tolist()
+            [2.0, 1.0]
         """
         if sp.issparse(matrix):
             coo = sp.coo_matrix(matrix)
@@ -264,7 +270,14 @@ class DirectedGraph:
         """Build from a networkx graph; nodes are numbered in ``G.nodes`` order.
 
         A ``Graph`` becomes both directions of each edge; a ``DiGraph`` is taken as is; in a
-        ``MultiDiGraph`` (or ``MultiGraph``) parallel edges are summed. Missing weights are 1.
+        ``MultiDiGraph`` (or ``MultiGraph``) parallel edges are summed. Missing weights are 1;
+        ``weight=None`` makes every edge 1. (A converter, not a hot path: it reads the edges
+        once through networkx's Python API.)
+
+        Example:
+            >>> import networkx as nx
+            >>> DirectedGraph.from_networkx(nx.Graph([("a", "b")])).num_edges  # both directions
+            2
         """
         import networkx as nx
 

@@ -138,10 +138,15 @@ def _parts(graph: DirectedGraph):
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(np.bincount(s.numpy(), minlength=n), out=indptr[1:])
     A = sp.csr_matrix((w.numpy(), t.numpy(), indptr), shape=(n, n))  # canonical: sorted, unique
-    M = A + 1j * A.T.tocsr()  # canonical merge of two canonical matrices
+    AT = A.T.tocsr()
+    AT.data = AT.data * 1j  # complex data in place of the real (no copy of the index arrays)
+    A.data = A.data.astype(np.complex128)
+    M = A + AT  # canonical merge of two canonical matrices
+    del A, AT
     a, b = M.data.real, M.data.imag
     rows = np.repeat(np.arange(n, dtype=np.int64), np.diff(M.indptr))
-    sym = (a + b) * 0.5
+    sym = a + b
+    sym *= 0.5
     degree = np.bincount(rows, weights=sym, minlength=n)
     parts = (torch.from_numpy(rows), torch.from_numpy(M.indices.astype(np.int64)), torch.from_numpy(sym),
              torch.from_numpy(a - b), torch.from_numpy(degree))
@@ -220,7 +225,8 @@ def _phasors(magnitude: np.ndarray, angle: np.ndarray, dtype: torch.dtype) -> to
     float64 throughout.
     """
     if dtype == torch.complex64:
-        turns = np.rint(angle * (1 / (2 * np.pi)))
+        turns = angle * (1 / (2 * np.pi))
+        np.rint(turns, out=turns)
         turns *= -2 * np.pi
         turns += angle
         a, m, real, cdt = turns.astype(np.float32), magnitude.astype(np.float32), np.float32, np.complex64
@@ -280,8 +286,10 @@ def normalized_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] =
     r"""Normalized Laplacian of the symmetrized graph, :math:`I - D^{-1/2} A_s D^{-1/2}`.
 
     Spectrum in [0, 2]. An isolated node gets diagonal 1 (its :math:`D^{-1/2}` is 0), so the
-    operator stays NaN-free; note that ``scipy.sparse.csgraph.laplacian(normed=True)`` and
-    networkx put 0 or 1 there by their own conventions.
+    operator stays NaN-free. Other libraries differ there: ``scipy.sparse.csgraph.laplacian(
+    normed=True)`` and networkx's ``normalized_laplacian_matrix`` put 0 on that diagonal, and
+    scipy also leaves self-loops out of the degrees (we and networkx count them); elsewhere the
+    three agree (checked in tests/test_operators.py).
 
     Args:
         graph: a DirectedGraph with non-negative weights.
