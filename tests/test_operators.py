@@ -532,3 +532,35 @@ def test_empty_and_edgeless_graphs_give_no_nan(num_nodes):
         np.testing.assert_allclose(_dense(ops["random_walk"]), 0 * eye)
         # edgeless PageRank walk is uniform: L = I - J / n (Chung 2005 with pi uniform)
         np.testing.assert_allclose(_dense(ops["pagerank"]), eye - 1 / num_nodes, atol=1e-12)
+
+
+# ---------------------------------------------------------------------- build internals
+def test_complex64_phases_stay_accurate_for_large_weights():
+    # the complex64 build reduces the angle in float64 before float32 cos / sin: with weights
+    # up to 1000 (angles of thousands of radians) it must still match complex128 to ~1e-6
+    rng = np.random.default_rng(7)
+    g = DirectedGraph.from_edges(rng.integers(0, 30, size=(2, 120)), weight=rng.uniform(1, 1000, 120), num_nodes=30)
+    for phase in ("difference", "sign"):
+        lo = magnetic_laplacian(g, 0.37, phase=phase, dtype=torch.complex64).to_dense().to(C128)
+        hi = magnetic_laplacian(g, 0.37, phase=phase, dtype=C128).to_dense()
+        torch.testing.assert_close(lo, hi, rtol=0, atol=2e-6)
+        np.testing.assert_allclose(hi.numpy(), _ref(g).mag_norm(0.37, phase), atol=1e-12)
+
+
+@given(directed_graphs(min_nodes=1))
+def test_assemble_fast_path_equals_general_path(g):
+    # operators._assemble takes a merge-only path for canonical COO input; the general path
+    # (torch.unique) must give the same matrix, also for shuffled input with repeats
+    from phasorgraph.operators import _assemble, _assemble_unsorted, _parts
+
+    rows, cols, sym, _, degree = _parts(g)
+    n = g.num_nodes
+    diag = torch.arange(n, dtype=F64) + 0.5
+    fast = _assemble(n, rows, cols, sym, F64, diag=diag).to_dense()
+    slow = _assemble_unsorted(n, rows, cols, sym, F64, diag=diag).to_dense()
+    torch.testing.assert_close(fast, slow, rtol=0, atol=1e-15)
+    order = torch.randperm(rows.numel(), generator=torch.Generator().manual_seed(0))
+    twice = torch.cat([order, order])  # every entry twice: values must be summed
+    shuffled = _assemble(n, rows[twice], cols[twice], sym[twice], F64, diag=diag).to_dense()
+    torch.testing.assert_close(shuffled, 2 * slow - torch.diag(diag), rtol=0, atol=1e-12)
+    torch.testing.assert_close(_assemble(n, rows, cols, sym, F64).to_dense(), slow - torch.diag(diag))
