@@ -10,8 +10,10 @@ Conventions (A[u, v] = w for an edge u -> v):
 
 Every function validates its arguments once, then works vectorized over the non-zeros (no
 Python loop over edges), computes in float64 and returns a CSR :class:`SparseOperator` of the
-requested dtype. Memory is O(N + nnz) except :func:`proximity_operators`, whose second-order
-matrices have the non-zeros of :math:`A A^T`.
+requested dtype (one exception: the complex64 normalized magnetic Laplacian takes cos / sin
+in float32 after reducing the angle in float64, an error at complex64 precision). Memory is
+O(N + nnz) except :func:`proximity_operators`, whose second-order matrices have the
+non-zeros of :math:`A A^T`.
 """
 
 from __future__ import annotations
