@@ -34,7 +34,7 @@ CASES = {
     "02_link_direction.py": (["--no-plot"], ["Held-out lanes, test metrics", "charge learned from 0.05",
                                              "charge 0 (no direction)"], None),
     "03_graph_classification.py": (["--no-plot"], ["Flow-network family, test accuracy",
-                                                   "magnetic diffusion T(0.25)"], None),
+                                                   "magnetic diffusion T(0.25)", "reversal check"], None),
     "04_oversmoothing.py": ([], ["Normalized Dirichlet energy", "RenormalizedFilter + ReLU", "BandMix + ReLU",
                                  "scattering layers + ReLU"], "04_oversmoothing.png"),
     "05_drop_in.py": (["--no-plot"], ["The whole change", "after: + MagneticFilter", "before: MLP on features"], None),
