@@ -138,15 +138,20 @@ def bench_size(num_edges: int, repeats: int, quick: bool) -> dict:
         xb = x.clone().requires_grad_()
         cases["builtin"] = (lambda: torch.sparse.mm(m, xb), [xb])
     gather_bytes = nnz * F * x.element_size()
+    slow = {}
     if how["gather"] and gather_bytes <= GATHER_LIMIT_BYTES:
         xg = x.clone().requires_grad_()
-        cases["gather"] = (gather_scatter_factory(op, xg), [xg])
+        # the slowest variant: timed round-robin with the others at small sizes, once at large
+        (slow if num_edges >= 1_000_000 else cases)["gather"] = (gather_scatter_factory(op, xg), [xg])
     if n <= DENSE_LIMIT_N:
         dense = op.to_dense()
         xd = x.clone().requires_grad_()
         cases["dense"] = (lambda: dense @ xd, [xd])
     res = fwd_bwd_times(cases, grad, repeats=how["repeats"], warmup=how["warmup"],
                         max_seconds=None if quick else 60.0)
+    if slow:
+        res.update(fwd_bwd_times(slow, grad, repeats=1, warmup=0))
+        cases.update(slow)
     # correctness of every variant against ours (same product)
     with torch.no_grad():
         ref = hermitian_matmul(op, x)
