@@ -16,7 +16,7 @@ from hypothesis import given
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from phasorgraph import DirectedGraph, magnetic_laplacian, normalized_laplacian
-from strategies import single_thread, directed_graphs, edge_lists, graphs_and_permutations
+from strategies import single_thread, directed_graphs, edge_lists, graphs_and_permutations  # noqa: F401 (fixture)
 
 pytestmark = pytest.mark.usefixtures("single_thread")
 

@@ -28,7 +28,7 @@ from phasorgraph import (
 )
 from phasorgraph.sparse import csr_matrix
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
-from strategies import charges, directed_graphs, features, single_thread  # noqa: F401
+from strategies import charges, directed_graphs, single_thread  # noqa: F401 (fixture)
 
 pytestmark = pytest.mark.usefixtures("single_thread")
 
