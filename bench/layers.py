@@ -77,11 +77,12 @@ def _reset_peak() -> int | None:
         return None
 
 
-def timed_with_peak(fn, repeats: int, max_seconds: float) -> dict:
-    """Median seconds of ``fn()`` (one untimed warm-up, then up to ``repeats`` runs or until
+def timed_with_peak(fn, repeats: int, max_seconds: float, warmup: int = 0) -> dict:
+    """Median seconds of ``fn()`` (``warmup`` untimed runs, then up to ``repeats`` runs or until
     ``max_seconds`` is spent) and the largest high-water resident bytes above the resident set
     just before a run. GC is collected before and paused during each run."""
-    fn()
+    for _ in range(warmup):
+        fn()
     times, peaks = [], []
     for _ in range(max(1, repeats)):
         gc.collect()
@@ -210,7 +211,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0, with_baseline: bool = T
             torch.autograd.backward(layer(x, graph), grad_out)
 
         clock = time.perf_counter()
-        package_step()                                     # builds and caches the operator
+        package_step()                                     # warm-up; builds and caches the operator
         op = None
         if not learned:
             op = next(iter(layer._operators._items.values()))[1]
@@ -247,6 +248,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0, with_baseline: bool = T
                 if diff > 1e-4 * max(ref.abs().max().item(), 1.0):
                     raise SystemExit(f"user-written layer disagrees with MagneticFilter: max diff {diff}")
                 del ref
+            user_step()                                    # warm-up
             timing = timed_with_peak(user_step, repeats, MAX_SECONDS)
             t_user, mem_user = timing["median"], timing["peak"]
             del user

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Optional, Sequence, Union
+from typing import Sequence, Union
 
 import torch
 from torch import nn
