@@ -265,3 +265,23 @@ def test_graph_is_immutable():
         g.num_nodes = 3
     with pytest.raises(AttributeError):
         g.extra = 1
+
+
+def test_many_more_nodes_than_edges_uses_little_memory():
+    # 1e12 nodes and 3 edges: canonicalization must stay O(E) (no row pointer of N + 1 entries)
+    g = DirectedGraph([10**12 - 1, 5, 5], [0, 7, 7], [1.0, 2.0, 0.5], num_nodes=10**12)
+    assert g.num_nodes == 10**12 and g.num_edges == 2
+    assert list(zip(g.source.tolist(), g.target.tolist(), g.weight.tolist())) == [(5, 7, 2.5), (10**12 - 1, 0, 1.0)]
+    r = DirectedGraph([0, 0, 3], [1, 1, 0], [1.0, -1.0, 2.0], num_nodes=10**6)  # cancelling duplicates
+    assert r.num_edges == 1 and r.weight.tolist() == [2.0]
+
+
+@given(edge_lists(min_nodes=1))
+def test_sparse_node_range_fallback_matches_main_path(raw):
+    # DirectedGraph canonicalizes through scipy's COO -> CSR unless num_nodes far exceeds the
+    # edge count; both routes must store identical edges
+    src, dst, w, n = raw
+    small = DirectedGraph(src, dst, w, n)
+    huge = DirectedGraph(src, dst, w, 10**7)  # 10**7 > 4 E + 4096: the sort-based route
+    assert torch.equal(small.source, huge.source) and torch.equal(small.target, huge.target)
+    torch.testing.assert_close(small.weight, huge.weight, rtol=1e-15, atol=1e-15)

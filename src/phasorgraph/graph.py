@@ -154,6 +154,19 @@ class DirectedGraph:
         """
         if src.numel() == 0:
             return src, dst, w
+        if n > 4 * src.numel() + 4096:
+            # far more nodes than edges: a row pointer of n + 1 entries would dominate, so
+            # sort the E pairs instead (O(E) memory; lexicographic, so source * n + target
+            # can never overflow int64)
+            s_, d_, w_ = src.numpy(), dst.numpy(), w.numpy()
+            order = np.lexsort((d_, s_))
+            s_, d_, w_ = s_[order], d_[order], w_[order]
+            first = np.ones(s_.size, dtype=bool)
+            first[1:] = (s_[1:] != s_[:-1]) | (d_[1:] != d_[:-1])
+            summed = np.bincount(np.cumsum(first) - 1, weights=w_)
+            keep = summed != 0
+            return (torch.from_numpy(s_[first][keep].copy()), torch.from_numpy(d_[first][keep].copy()),
+                    torch.from_numpy(summed[keep].astype(np.float64)))
         m = sp.csr_matrix((w.numpy(), (src.numpy(), dst.numpy())), shape=(n, n))
         m.sum_duplicates()
         m.eliminate_zeros()
