@@ -7,16 +7,22 @@ numpy.polynomial.chebyshev.chebval on its eigenvalues (tests/layer_specs.py).
 
 import os
 
+import numpy as np
 import pytest
 import torch
+from hypothesis import given
+from hypothesis import strategies as st
 
 from layer_specs import (
     GENERIC_CHECKS,
     features,
+    np_chebyshev_filter,
+    np_normalized_magnetic_laplacian,
     reference_graph,
     single_thread,  # noqa: F401 (fixture)
     specs_for,
 )
+from strategies import charges, graphs_and_permutations
 from phasorgraph import DirectedGraph, GraphInputError, normalized_laplacian
 from phasorgraph.nn import ChebyshevFilter, MagneticFilter
 from phasorgraph.nn import magnetic as magnetic_module
@@ -208,3 +214,26 @@ def test_other_bad_arguments():
         layer(features(7, 3, torch.float32, False), normalized_laplacian(g))
     with pytest.raises(GraphInputError, match=r"x has dtype torch.complex128 but the layer's parameters are torch.float32"):
         layer(features(7, 3, torch.float64, True), g)
+
+
+# ---------------------------------------------------------------------- properties on generated graphs
+@given(gp=graphs_and_permutations(min_nodes=1, max_nodes=8, unit_weights=True), q=charges(),
+       learn=st.booleans())
+def test_property_dense_reference_and_permutation_equivariance(gp, q, learn):
+    # generated graphs with isolated nodes, self-loops, duplicates and reciprocal edges
+    # reference: numpy.linalg.eigh + numpy.polynomial.chebyshev.chebval on the dense
+    # I - D^-1/2 (As * exp(i 2 pi q (A - A^T))) D^-1/2 (layer_specs.np_chebyshev_filter)
+    graph, perm = gp
+    if learn:
+        q = min(max(q, 1e-3), 0.5 - 1e-3)          # a learned charge starts strictly inside
+    torch.manual_seed(0)
+    layer = MagneticFilter(2, 2, order=2, charge=q, learn_charge=learn, dtype=torch.float64)
+    n = graph.num_nodes
+    x = features(n, 2, torch.float64, True)
+    y = layer(x, graph)
+    A = graph.to_scipy().toarray()
+    qq = float(layer.charge.detach())
+    W = layer.weight.detach().numpy()
+    expected = np_chebyshev_filter(np_normalized_magnetic_laplacian(A, qq), x.numpy(), W, 2.0)
+    np.testing.assert_allclose(y.detach().numpy(), expected + layer.bias.detach().numpy(), atol=1e-9)
+    torch.testing.assert_close(layer(x[perm], graph.permute(perm)), y[perm])
