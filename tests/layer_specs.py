@@ -2,10 +2,11 @@
 
 Each :class:`LayerSpec` says how to build a layer (with factory kwargs), how to make its
 inputs on a small fixed graph, and (optionally) a dense NumPy reference of its forward. The
-generic checks (``GENERIC_CHECKS``) run on every spec: reference forward, device/dtype factory
-kwargs, repr, pickle and state_dict round trips, non-contiguous input, and gradcheck in
-float64 over the features and every parameter (PyTorch's test_modules.py does the same kind
-of sweep; the structure here is our own).
+generic checks (``GENERIC_CHECKS``) run on every spec: reference forward (float64, and float32
+against the same reference), device/dtype factory kwargs, repr, pickle / torch.save and
+state_dict round trips, non-contiguous input, gradcheck in float64 over the features and every
+parameter (learned charges included), and permutation equivariance (PyTorch's test_modules.py
+does the same kind of sweep; the structure here is our own).
 
 To add layers: append ``LayerSpec`` entries with a new ``family`` and, in that family's test
 file, parametrize over ``specs_for("<family>")`` and ``GENERIC_CHECKS`` exactly as
