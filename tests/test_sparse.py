@@ -314,3 +314,22 @@ def test_pickle_round_trip_after_products():
     general_matmul(op, x).abs().sum().backward()  # fills the kernel and adjoint caches
     for clone in (pickle.loads(pickle.dumps(op)), copy.deepcopy(op)):
         torch.testing.assert_close(clone @ x.detach(), op @ x.detach(), rtol=0, atol=0)
+
+
+@pytest.mark.parametrize("values_dtype", [REAL, COMPLEX])
+@pytest.mark.parametrize("x_dtype", [REAL, COMPLEX])
+def test_sampled_product_fused_and_chunked_agree_with_closed_form(values_dtype, x_dtype, monkeypatch):
+    monkeypatch.setattr(sparse, "_SDDMM_CHUNK_ELEMENTS", 5)  # many chunks in the loop form
+    crow, col, _ = _pattern(_random_dense(N, values_dtype, hermitian=False, seed=18))
+    rows = sparse._row_indices(crow)
+    x = _features((N, 4), x_dtype)
+    g = _features((N, 4), COMPLEX if (values_dtype.is_complex or x_dtype.is_complex) else REAL, seed=4)
+    # closed form sum_f g[r_k, f] conj(x[c_k, f]) (its real part for real values), numpy
+    expected = (g.numpy()[rows.numpy()] * np.conj(x.numpy()[col.numpy()])).sum(1)
+    if not values_dtype.is_complex:
+        expected = expected.real
+    fused = sparse._sampled_products(g, x, rows, col, values_dtype.is_complex, crow=crow)
+    chunked = sparse._sampled_products(g, x, rows, col, values_dtype.is_complex)
+    for got in (fused, chunked):
+        assert got.is_complex() == values_dtype.is_complex
+        np.testing.assert_allclose(got.numpy(), expected, rtol=1e-12, atol=1e-12)

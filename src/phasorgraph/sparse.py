@@ -469,30 +469,60 @@ def _row_indices(crow: torch.Tensor) -> torch.Tensor:
 
 
 def _sampled_products(grad2d: torch.Tensor, x2d: torch.Tensor, rows: torch.Tensor, cols: torch.Tensor,
-                      complex_values: bool) -> torch.Tensor:
-    r"""g_k = sum_f grad[rows_k, f] * conj(x[cols_k, f]), in chunks of bounded memory.
+                      complex_values: bool, *, crow: Optional[torch.Tensor] = None) -> torch.Tensor:
+    r"""g_k = sum_f grad[rows_k, f] * conj(x[cols_k, f]), with extra memory O(nnz + N W).
 
     Returns complex g when ``complex_values``, else its real part (the gradient of real values).
-    The gathered rows go into two preallocated (chunk, W) buffers of about
-    ``_SDDMM_CHUNK_ELEMENTS`` elements each, reused for every chunk: small enough to stay in
-    cache (measured about 5x faster here than fresh 32 MB blocks per chunk).
+    With ``crow`` given (the CSR row offsets of the pattern) it is one call of
+    ``torch.sparse.sampled_addmm`` per real or complex part, (grad @ x^H) sampled on the
+    pattern; measured here as fast as the chunked loop at 4e6 non-zeros and 2x faster at 2e5,
+    in one call instead of hundreds. Without ``crow``: the chunked loop below.
     """
-    nnz = rows.numel()
+    if crow is not None:
+        return _sampled_products_fused(grad2d, x2d, crow, cols, complex_values)
+    return _sampled_products_chunked(grad2d, x2d, rows, cols, complex_values)
+
+
+def _sampled_parts(grad2d: torch.Tensor, x2d: torch.Tensor, complex_values: bool):
+    """Operands for the sampled product: (list of grad parts, x, result dtype)."""
     dtype = torch.promote_types(grad2d.dtype, x2d.dtype)
     if not complex_values:
         dtype = _real_precision(dtype)
-    if nnz == 0 or grad2d.shape[1] == 0:
-        return torch.zeros(nnz, dtype=dtype, device=grad2d.device)
     g, x = _plain(grad2d), _plain(x2d)
     if g.is_complex() and x.is_complex() and not complex_values:
         # Re(sum g conj(x)) = sum over the real views of g_re x_re + g_im x_im
         g, x = _view_real(g), _view_real(x)
     if g.is_complex() and not x.is_complex():
         # complex grad, real x (complex values on real features): real and imaginary parts
-        gs = (g.real.contiguous(), g.imag.contiguous())
+        gs = [g.real.contiguous(), g.imag.contiguous()]
     else:
-        gs = (g.contiguous(),)
-    x = x.contiguous()
+        gs = [g.contiguous()]
+    return gs, x.contiguous(), dtype
+
+
+def _sampled_products_fused(grad2d, x2d, crow, cols, complex_values):
+    nnz = cols.numel()
+    gs, x, dtype = _sampled_parts(grad2d, x2d, complex_values)
+    if nnz == 0 or x.shape[1] == 0:
+        return torch.zeros(nnz, dtype=dtype, device=x.device)
+    n = crow.numel() - 1
+    xh = x.conj().T.resolve_conj() if x.is_complex() else x.T  # (W, N), x^H
+    outs = []
+    for t in gs:
+        pattern = csr_matrix(crow, cols, t.new_zeros(nnz), (n, n))
+        outs.append(torch.sparse.sampled_addmm(pattern, t, xh, beta=0.0).values().detach().clone())
+    out = outs[0] if len(outs) == 1 else torch.complex(outs[0], outs[1])
+    return out.to(dtype)
+
+
+def _sampled_products_chunked(grad2d, x2d, rows, cols, complex_values):
+    """The loop form: gathered rows go into two preallocated (chunk, W) buffers of about
+    ``_SDDMM_CHUNK_ELEMENTS`` elements each, reused for every chunk, small enough to stay in
+    cache (measured about 5x faster here than fresh 32 MB blocks per chunk)."""
+    nnz = rows.numel()
+    gs, x, dtype = _sampled_parts(grad2d, x2d, complex_values)
+    if nnz == 0 or x.shape[1] == 0:
+        return torch.zeros(nnz, dtype=dtype, device=x.device)
     width = int(x.shape[1])
     step = max(1, min(nnz, _SDDMM_CHUNK_ELEMENTS // width))
     xbuf = x.new_empty((step, width))
@@ -527,7 +557,7 @@ class _ValuesMatmul(torch.autograd.Function):
         g2 = _flat(grad)
         grad_values = grad_x = None
         if ctx.needs_input_grad[0]:
-            gv = _sampled_products(g2, _flat(x), rows, col, values.is_complex())
+            gv = _sampled_products(g2, _flat(x), rows, col, values.is_complex(), crow=crow)
             grad_values = gv.to(values.dtype)
         if ctx.needs_input_grad[1]:
             if ctx.hermitian:
