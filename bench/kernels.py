@@ -273,6 +273,10 @@ def main(argv=None):
         summary["slope_range_E"] = [min(es), max(es)]
         summary["slope_ours_fwd"] = slope(es, [r["ours_fwd_s"] for r in big])
         summary["slope_ours_total"] = slope(es, [r["ours_total_s"] for r in big])
+        large = [r for r in rows if r["E"] >= 1_000_000]
+        if len(large) >= 2:  # past the caches: x no longer fits, every gather misses
+            summary["slope_ours_fwd_from_1e6"] = slope([r["E"] for r in large], [r["ours_fwd_s"] for r in large])
+            summary["slope_ours_total_from_1e6"] = slope([r["E"] for r in large], [r["ours_total_s"] for r in large])
     target = [r for r in rows if r["E"] == 2_000_000]
     if target:
         t = target[0]

@@ -7,7 +7,7 @@ custom autograd functions whose backward never asks autograd to transpose a CSR 
 * :func:`general_matmul` - ``op @ x`` for any ``op``; backward ``op^H @ grad`` with ``op^H``
   built once and cached on the operator.
 * :func:`values_matmul` - ``A(values) @ x`` on a fixed CSR pattern, differentiable in the
-  values (a chunked sampled dense-dense product) and in ``x``.
+  values (a sampled dense-dense product) and in ``x``.
 
 A real operator applied to complex features never casts the operator to complex: the features
 are viewed as real with ``torch.view_as_real`` and multiplied as one (N, 2F) real product.
@@ -219,7 +219,8 @@ class SparseOperator:
 
 # ---------------------------------------------------------------------- the raw product
 #
-# Kernel choice (measured by bench/kernels.py on the project's 2-core CPU machine, torch 2.13):
+# Kernel choice (round-robin medians on the project's 2-core CPU machine, torch 2.13, at E = 1e6-2e6,
+# F = 64; bench/README.md has the end-to-end figures):
 # * a real CSR times a dense (N, W) block goes through torch.sparse.mm(matrix, x, "sum"), the
 #   row-parallel CPU kernel torch added for reductions; it beat the plain ``matrix @ x`` by
 #   about 1.3-1.7x here at F = 64 (same result to rounding).
@@ -583,8 +584,8 @@ def values_matmul(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, x
     r"""``A @ x`` with ``A`` the CSR matrix ``(crow, col, values)``, differentiable in ``values``.
 
     The gradient of value k is :math:`\sum_f g[r_k, f]\, \overline{x[c_k, f]}` (a sampled
-    dense-dense product, computed in chunks so extra memory stays O(nnz + N F)); real values
-    get its real part. The gradient of x is :math:`A^H g`, taken as :math:`A g` when
+    dense-dense product, :math:`g x^H` on the pattern by ``torch.sparse.sampled_addmm``, so
+    extra memory stays O(nnz + N F)); real values get its real part. The gradient of x is :math:`A^H g`, taken as :math:`A g` when
     ``hermitian=True`` (the real part of it when x is real).
 
     Args:
