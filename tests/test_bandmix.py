@@ -1,7 +1,7 @@
 """BandMix: channels against dense references, the attention formula, gradients, caching, errors.
 
 References: low-pass channels are powers of the renormalized adjacency (Kipf & Welling 2017)
-and band-pass channels the moduli of diffusion wavelets (Min, Wenkel & Wolf 2020), both
+and band-pass channels the moduli of diffusion wavelets (Min et al. 2020), both
 computed here densely with numpy.linalg.matrix_power; the renormalized adjacency itself is
 rebuilt from networkx's adjacency matrix of the symmetrized graph.
 """

@@ -1,6 +1,6 @@
 """DiffusionScattering: dense reference, channel layout, mixing, gradients, equivariance, errors.
 
-Reference: the scattering coefficients of Gama, Ribeiro & Bruna 2019 / Gao, Wolf & Hirn 2019
+Reference: the scattering coefficients of Gama et al. 2019 / Gao et al. 2019
 (Phi_J x, Phi_J |Psi_j x|, Phi_J |Psi_j2 |Psi_j1 x|| for j1 < j2), computed here with dense
 numpy.linalg.matrix_power wavelets and numpy.abs, channel by channel (no stacking).
 """

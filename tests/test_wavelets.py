@@ -6,7 +6,7 @@ References used here:
   (inside spectral.frame_bounds, and once directly); the bounds [1 / (J + 2), 1] follow from
   the responses 1 - l, l^(2^(j-1)) - l^(2^j), l^(2^J) on l in [0, 1] being non-negative and
   summing to 1 (sum of squares <= square of sum; Cauchy-Schwarz for the lower bound), as in
-  Gama, Ribeiro & Bruna 2019 and Gao, Wolf & Hirn 2019;
+  Gama et al. 2019 and Gao et al. 2019;
 * for P = S T S^-1 (S = diag(sqrt d)) the bounds hold in the norm ||D^-1/2 x|| (same sources).
 """
 

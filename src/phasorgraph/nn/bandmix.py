@@ -36,7 +36,7 @@ def _check_steps(low_pass_steps) -> tuple:
 class BandMix(nn.Module):
     r"""Per-node attention over low-pass :math:`\tilde A^k x` and band-pass :math:`|\Psi_j x|` channels.
 
-    After Min, Wenkel and Wolf (2020), who pair graph-convolution (low-pass) channels with
+    After Min et al. (2020), who pair graph-convolution (low-pass) channels with
     scattering (band-pass) channels to counter over-smoothing. Channels, in this order:
 
     * low-pass c = 1..L: :math:`Z_c = \tilde A^{k_c} x` for :math:`k_c` in ``low_pass_steps``,
@@ -78,7 +78,7 @@ class BandMix(nn.Module):
         last_attention (Tensor or None): the (N, C) weights of the last forward (detached).
 
     References:
-        Y. Min, F. Wenkel and G. Wolf, Scattering GCN: overcoming oversmoothness in graph
+        Y. Min et al., Scattering GCN: overcoming oversmoothness in graph
         convolutional networks, NeurIPS 2020.
 
     Example:

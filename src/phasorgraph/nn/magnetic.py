@@ -119,7 +119,7 @@ class MagneticFilter(_CachedOperators, nn.Module):
             Differentiable when learned.
 
     References:
-        X. Zhang, Y. He, N. Brugnone, M. Perlmutter, M. Hirn, MagNet: a neural network for
+        X. Zhang et al., MagNet: a neural network for
         directed graphs, NeurIPS 2021. M. Defferrard et al., NeurIPS 2016.
 
     Example:

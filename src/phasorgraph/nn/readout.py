@@ -52,7 +52,7 @@ class MomentReadout(nn.Module):
         - output: (G, K C), column ``(k - 1) C + c`` holding moment k of channel c.
 
     References:
-        F. Gao, G. Wolf and M. Hirn, Geometric scattering for graph data analysis, ICML 2019.
+        F. Gao et al., Geometric scattering for graph data analysis, ICML 2019.
 
     Example:
         >>> import torch

@@ -86,7 +86,7 @@ class DiffusionScattering(nn.Module):
 
     References:
         F. Gama, A. Ribeiro and J. Bruna, Diffusion scattering transforms on graphs, ICLR 2019.
-        F. Gao, G. Wolf and M. Hirn, Geometric scattering for graph data analysis, ICML 2019.
+        F. Gao et al., Geometric scattering for graph data analysis, ICML 2019.
 
     Example:
         >>> import torch

@@ -153,8 +153,8 @@ class DiffusionWavelets(nn.Module):
 
     References:
         R. R. Coifman and M. Maggioni, Diffusion wavelets, ACHA 2006. F. Gama, A. Ribeiro and
-        J. Bruna, Diffusion scattering transforms on graphs, ICLR 2019. F. Gao, G. Wolf and
-        M. Hirn, Geometric scattering for graph data analysis, ICML 2019.
+        J. Bruna, Diffusion scattering transforms on graphs, ICLR 2019. F. Gao et al.,
+        Geometric scattering for graph data analysis, ICML 2019.
 
     Example:
         >>> import torch
@@ -217,7 +217,7 @@ class ScaleSelector(nn.Module):
         selection (Tensor, property): :math:`F = \mathrm{softmax}(W, \dim=1)`.
 
     References:
-        A. Tong, F. Wenkel, K. MacDonald, S. Krishnaswamy and G. Wolf, Data-driven learning of
+        A. Tong et al., Data-driven learning of
         geometric scattering modules for GNNs, IEEE MLSP 2021 (parametrization as recalled
         from memory; documented above so it can be checked).
 
