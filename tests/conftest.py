@@ -27,6 +27,15 @@ torch.set_num_threads(1)
 
 
 @pytest.fixture(autouse=True)
+def _single_thread():
+    """Keep every test single-threaded, even after a test changed the setting."""
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+@pytest.fixture(autouse=True)
 def _sparse_invariants():
     """Turn on torch's sparse invariant checks for every test (PyTorch sparse docs)."""
     with torch.sparse.check_sparse_tensor_invariants():

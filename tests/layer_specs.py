@@ -54,18 +54,9 @@ from phasorgraph.nn import (
     ZReLU,
 )
 
-__all__ = ["single_thread", "LayerSpec", "SPECS", "specs_for", "GENERIC_CHECKS", "reference_graph", "np_normalized_magnetic_laplacian",
+__all__ = ["LayerSpec", "SPECS", "specs_for", "GENERIC_CHECKS", "reference_graph", "np_normalized_magnetic_laplacian",
            "np_chebyshev_filter", "np_weights", "np_bias", "features"]
 
-
-@pytest.fixture
-def single_thread():
-    """One intra-op thread for tiny-graph tests: on two shared cores the thread handoff of a
-    7-node sparse product costs more than the product (common practice, no source)."""
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)
 
 
 # ---------------------------------------------------------------------- the fixed small graph

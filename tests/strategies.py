@@ -29,8 +29,7 @@ from hypothesis import strategies as st
 
 from phasorgraph import DirectedGraph
 
-__all__ = ["edge_lists", "directed_graphs", "charges", "features", "graphs_and_permutations",
-           "single_thread"]
+__all__ = ["edge_lists", "directed_graphs", "charges", "features", "graphs_and_permutations"]
 
 #: positive weights: kept within four orders of magnitude so float64 tolerances stay meaningful
 _WEIGHT_MIN, _WEIGHT_MAX = 1e-2, 1e2
@@ -111,18 +110,3 @@ def graphs_and_permutations(draw, min_nodes: int = 1, max_nodes: int = 12, unit_
     perm = torch.as_tensor(draw(st.permutations(range(g.num_nodes))), dtype=torch.int64)
     return g, perm
 
-
-@pytest.fixture(scope="module")
-def single_thread():
-    """Run a test module with one intra-op thread, then restore the previous setting.
-
-    Import it into a test module (``from strategies import single_thread``) and use it with
-    ``pytestmark = pytest.mark.usefixtures("single_thread")``. Measured here with other jobs
-    on the 2 cores: one CSR product of a 3 x 3 matrix took about 16 ms with 2 OpenMP threads
-    (waiting for the second thread) and about 9 us with 1, so tiny-graph tests run far
-    faster on one thread.
-    """
-    before = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(before)

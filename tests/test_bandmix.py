@@ -17,15 +17,6 @@ from phasorgraph import DirectedGraph, GraphInputError, operators
 from phasorgraph.nn import BandMix
 
 
-@pytest.fixture(autouse=True)
-def _one_thread():
-    """These graphs are tiny: run single-threaded (thread hand-offs dominate at this size on a
-    busy 2-core machine; common practice, no source) and restore the setting afterwards."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
 
 def _graph():
     return DirectedGraph.from_edges([[0, 1, 2, 3, 3, 4, 1, 5], [1, 2, 0, 4, 4, 3, 1, 0]],

@@ -4,11 +4,10 @@ papers, written in NumPy in tests/layer_specs.py), the name table, z = 0, and ba
 import pytest
 import torch
 
-from layer_specs import GENERIC_CHECKS, single_thread, specs_for  # noqa: F401 (fixture)
+from layer_specs import GENERIC_CHECKS, specs_for
 from phasorgraph import GraphInputError
 from phasorgraph.nn import ACTIVATIONS, Cardioid, ComplexToReal, ModReLU, SplitReLU, complex_activation
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 
 @pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)

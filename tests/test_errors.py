@@ -24,9 +24,7 @@ from phasorgraph import (
     renormalized_adjacency,
 )
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
-from strategies import single_thread  # noqa: F401 (fixture)
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 
 def _g():

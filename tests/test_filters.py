@@ -14,7 +14,6 @@ from layer_specs import (
     np_chebyshev_filter,
     np_normalized_magnetic_laplacian,
     reference_graph,
-    single_thread,  # noqa: F401 (fixture)
     specs_for,
 )
 from phasorgraph import (
@@ -28,7 +27,6 @@ from phasorgraph import (
 from phasorgraph.nn import ChebyshevFilter, RenormalizedFilter, SpectralMultiplier
 from phasorgraph.nn import filters as filters_module
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 
 @pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)

@@ -16,9 +16,8 @@ from hypothesis import given
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
 from phasorgraph import DirectedGraph, magnetic_laplacian, normalized_laplacian
-from strategies import single_thread, directed_graphs, edge_lists, graphs_and_permutations  # noqa: F401 (fixture)
+from strategies import directed_graphs, edge_lists, graphs_and_permutations
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 
 def _dense_from_raw(src, dst, w, n):

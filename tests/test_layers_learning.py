@@ -22,11 +22,9 @@ import pytest
 import torch
 from torch import nn
 
-from layer_specs import single_thread  # noqa: F401 (fixture)
 from phasorgraph import DirectedGraph
 from phasorgraph.nn import ComplexToReal, MagneticFilter
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 BLOCK = 60
 DENSITY = 0.15

@@ -19,7 +19,6 @@ from layer_specs import (
     np_chebyshev_filter,
     np_normalized_magnetic_laplacian,
     reference_graph,
-    single_thread,  # noqa: F401 (fixture)
     specs_for,
 )
 from strategies import charges, graphs_and_permutations
@@ -27,7 +26,6 @@ from phasorgraph import DirectedGraph, GraphInputError, normalized_laplacian
 from phasorgraph.nn import ChebyshevFilter, MagneticFilter
 from phasorgraph.nn import magnetic as magnetic_module
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 
 @pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)

@@ -20,9 +20,7 @@ from phasorgraph.data.generators import directed_block_model
 from phasorgraph.errors import GraphInputError
 from phasorgraph.graph import DirectedGraph
 from phasorgraph.operators import magnetic_laplacian, magnetic_matmul
-from strategies import single_thread  # noqa: F401  (fixture)
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 PHASES = ["difference", "sign"]
 

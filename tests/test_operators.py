@@ -41,12 +41,11 @@ from phasorgraph import (
     random_walk_laplacian,
     renormalized_adjacency,
 )
-from strategies import single_thread, charges, directed_graphs, graphs_and_permutations  # noqa: F401 (fixture)
+from strategies import charges, directed_graphs, graphs_and_permutations
 
 F64, C128 = torch.float64, torch.complex128
 TOL = dict(rtol=1e-10, atol=1e-10)
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 
 # ---------------------------------------------------------------------- dense reference

@@ -19,15 +19,6 @@ from phasorgraph import DirectedGraph, operators, spectral
 from phasorgraph.nn import DiffusionScattering, DiffusionWavelets
 
 
-@pytest.fixture(autouse=True)
-def _one_thread():
-    """These graphs are tiny: run single-threaded (thread hand-offs dominate at this size on a
-    busy 2-core machine; common practice, no source) and restore the setting afterwards."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
 
 def _connected_freight_graph(n=300, extra=4, seed=0):
     """Depots on a one-way delivery loop plus random one-way shipments (weights in [0.5, 1.5])."""

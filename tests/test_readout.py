@@ -16,15 +16,6 @@ from phasorgraph import GraphInputError
 from phasorgraph.nn import MomentReadout
 
 
-@pytest.fixture(autouse=True)
-def _one_thread():
-    """These graphs are tiny: run single-threaded (thread hand-offs dominate at this size on a
-    busy 2-core machine; common practice, no source) and restore the setting afterwards."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
 
 def _reference(x, index, num_graphs, moments, normalized):
     out = np.zeros((num_graphs, moments, x.shape[1]))

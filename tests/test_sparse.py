@@ -17,9 +17,7 @@ from torch.autograd import gradcheck
 import phasorgraph.sparse as sparse
 from phasorgraph.errors import GraphInputError
 from phasorgraph.sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
-from strategies import single_thread  # noqa: F401  (fixture)
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 N = 7
 REAL, COMPLEX = torch.float64, torch.complex128

@@ -28,9 +28,8 @@ from phasorgraph import (
 )
 from phasorgraph.sparse import csr_matrix
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
-from strategies import charges, directed_graphs, single_thread  # noqa: F401 (fixture)
+from strategies import charges, directed_graphs
 
-pytestmark = pytest.mark.usefixtures("single_thread")
 
 F64, C128 = torch.float64, torch.complex128
 

@@ -21,15 +21,6 @@ from phasorgraph.nn import DiffusionWavelets, ScaleSelector
 from strategies import charges, directed_graphs
 
 
-@pytest.fixture(autouse=True)
-def _one_thread():
-    """These graphs are tiny: run single-threaded (thread hand-offs dominate at this size on a
-    busy 2-core machine; common practice, no source) and restore the setting afterwards."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
 
 KINDS = ("real", "magnetic", "walk")
 
