@@ -10,6 +10,7 @@ from .operators import (
     magnetic_adjacency,
     magnetic_laplacian,
     magnetic_matmul,
+    magnetic_product,
     normalized_laplacian,
     pagerank_laplacian,
     proximity_operators,
@@ -43,5 +44,6 @@ __all__ = [
     "pagerank_laplacian",
     "proximity_operators",
     "magnetic_matmul",
+    "magnetic_product",
     "__version__",
 ]

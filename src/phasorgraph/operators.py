@@ -43,6 +43,7 @@ __all__ = [
     "proximity_operators",
     "ProximityOperators",
     "magnetic_matmul",
+    "magnetic_product",
 ]
 
 _PHASES = ("difference", "sign")
@@ -707,20 +708,76 @@ def _magnetic_factors(graph: DirectedGraph, phase: str, dtype: torch.dtype, devi
     return factors
 
 
+def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str = "difference"):
+    r"""The map :math:`x \mapsto L_{norm}(q)\, x` at a tensor charge, with the values built once.
+
+    :math:`L_{norm}(q) x = x - D^{-1/2} H(q) D^{-1/2} x`. The non-zero values
+    :math:`w_{uv} e^{i \Theta_{uv}(q)} / \sqrt{d_u d_v}` are computed from ``charge`` with torch
+    ops on a fixed sparsity pattern (cached on the graph) when this function is called; every
+    call of the returned map reuses them, so a K-step Chebyshev recursion computes (and keeps
+    for the backward) one value array, not K. :func:`phasorgraph.sparse.values_matmul` carries
+    the gradient from the values to q. Build a new map whenever the charge changes (once per
+    forward pass in a layer).
+
+    Args:
+        graph: a DirectedGraph with non-negative weights.
+        charge: 0-dim real floating tensor q (may require grad). Not range-checked (the
+            operator is periodic in q); layers keep it in [0, 0.5] themselves.
+        phase: "difference" (default) or "sign".
+
+    The precision and device of the values follow ``charge``.
+
+    Returns:
+        A function taking x (N, ...) real or complex of the charge's precision, returning the
+        complex (N, ...) product (real x is multiplied without being cast to complex).
+
+    Example:
+        >>> import torch
+        >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+        >>> q = torch.tensor(0.1, requires_grad=True)
+        >>> apply = magnetic_product(g, q)
+        >>> y = apply(apply(torch.ones(3, 2)))
+        >>> y.abs().sum().backward(); q.grad is not None
+        True
+    """
+    graph = _check_graph(graph)
+    phase = _check_phase(phase)
+    if not isinstance(charge, torch.Tensor) or charge.dim() != 0 or not charge.dtype.is_floating_point:
+        raise GraphInputError(
+            f"charge must be a 0-dim real floating tensor; got "
+            f"{type(charge).__name__ if not isinstance(charge, torch.Tensor) else f'shape {tuple(charge.shape)}, dtype {charge.dtype}'}"
+        )
+    real = charge.dtype
+    if real not in _REAL:
+        raise GraphInputError(f"charge must be float32 or float64; got {real}")
+    n = graph.num_nodes
+    crow, cols, rows, magnitude, base = _magnetic_factors(graph, phase, real, charge.device)
+    values = torch.polar(magnitude, base * charge)  # the non-zeros of D^-1/2 H(q) D^-1/2
+
+    def apply(x: torch.Tensor) -> torch.Tensor:
+        if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n:
+            raise GraphInputError(f"x must have num_nodes = {n} rows (shape (N, ...)); got shape {tuple(getattr(x, 'shape', ()))}")
+        precision = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
+        if precision != real:
+            raise GraphInputError(f"charge has dtype {real} but x has precision {precision}; use the same precision")
+        # real x stays real: values_matmul multiplies it by the real and imaginary parts directly
+        return x - values_matmul(crow, cols, values, x, hermitian=True, rows=rows)
+
+    return apply
+
+
 def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor, *,
                     phase: str = "difference") -> torch.Tensor:
     r"""The normalized magnetic Laplacian at a tensor charge times x, differentiable in both.
 
-    :math:`y = L_{norm}(q)\, x = x - D^{-1/2} H(q) D^{-1/2} x`. The non-zero values
-    :math:`w_{uv} e^{i \Theta_{uv}(q)} / \sqrt{d_u d_v}` are computed from ``charge`` with torch
-    ops on a fixed sparsity pattern (cached on the graph), and
-    :func:`phasorgraph.sparse.values_matmul` carries the gradient from the values to q.
-    The charge is not range-checked here (the operator is periodic in q); layers keep it in
-    [0, 0.5] themselves.
+    :math:`y = L_{norm}(q)\, x = x - D^{-1/2} H(q) D^{-1/2} x`, built as in
+    :func:`magnetic_product` (values from ``charge`` with torch ops on a cached fixed pattern;
+    :func:`phasorgraph.sparse.values_matmul` carries the gradient to q). For several products
+    at the same charge, call :func:`magnetic_product` once and reuse the map.
 
     Args:
         graph: a DirectedGraph with non-negative weights.
-        charge: 0-dim real tensor q (may require grad).
+        charge: 0-dim real tensor q (may require grad), not range-checked.
         x: (N, ...) real or complex features; the precision of ``charge`` must match.
         phase: "difference" (default) or "sign".
 
@@ -735,20 +792,7 @@ def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor,
         >>> y.abs().sum().backward(); q.grad is not None
         True
     """
-    graph = _check_graph(graph)
-    phase = _check_phase(phase)
-    if not isinstance(charge, torch.Tensor) or charge.dim() != 0 or not charge.dtype.is_floating_point:
-        raise GraphInputError(
-            f"charge must be a 0-dim real floating tensor; got "
-            f"{type(charge).__name__ if not isinstance(charge, torch.Tensor) else f'shape {tuple(charge.shape)}, dtype {charge.dtype}'}"
-        )
-    n = graph.num_nodes
-    if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n:
+    n = graph.num_nodes if isinstance(graph, DirectedGraph) else None
+    if n is not None and (not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n):
         raise GraphInputError(f"x must have num_nodes = {n} rows (shape (N, ...)); got shape {tuple(getattr(x, 'shape', ()))}")
-    real = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
-    if charge.dtype != real:
-        raise GraphInputError(f"charge has dtype {charge.dtype} but x has precision {real}; use the same precision")
-    crow, cols, rows, magnitude, base = _magnetic_factors(graph, phase, real, x.device)
-    values = torch.polar(magnitude, base * charge)  # the non-zeros of D^-1/2 H(q) D^-1/2
-    # real x stays real: values_matmul multiplies it by the real and imaginary parts directly
-    return x - values_matmul(crow, cols, values, x, hermitian=True, rows=rows)
+    return magnetic_product(graph, charge, phase=phase)(x)

@@ -11,7 +11,7 @@ from torch import nn
 
 from ..errors import GraphInputError
 from ..graph import DirectedGraph
-from ..operators import magnetic_laplacian, magnetic_matmul
+from ..operators import magnetic_laplacian, magnetic_product
 from .filters import (
     _COMPLEX_OF,
     _CachedOperators,
@@ -87,7 +87,7 @@ class MagneticFilter(_CachedOperators, nn.Module):
       when the loss asks for it (a map such as :math:`q = \tfrac14 (1 - \cos\theta)` has
       :math:`dq/d\theta = 0` exactly at q = 0 and can stay stuck there). The start must therefore
       lie in the open interval (0, 0.5). The operator is then rebuilt from q on every forward
-      through :func:`phasorgraph.operators.magnetic_matmul` (differentiable in q).
+      through :func:`phasorgraph.operators.magnetic_product` (values built once per forward, differentiable in q).
 
     With a fixed charge the operator is built once per graph and cached in a plain attribute
     (a few graphs at a time; no sparse buffers, so DistributedDataParallel can wrap the layer).
@@ -231,8 +231,8 @@ class MagneticFilter(_CachedOperators, nn.Module):
         for g in range(self.num_charges):
             wg = w[:, :, g * width:(g + 1) * width]
             if self.learn_charge:
-                def product(t, q=charges[g]):
-                    return magnetic_matmul(graph, q, t, phase=self.phase)
+                # values built once per charge and forward, shared by the K products
+                product = magnetic_product(graph, charges[g], phase=self.phase)
             else:
                 product = self._operator(graph, charges[g], cdtype).matmul
             # L~ = L(q) - I: lmax = 2 for the normalized magnetic Laplacian
