@@ -18,7 +18,7 @@ $(STAMP): pyproject.toml
 venv: $(STAMP)
 
 demo: $(STAMP)
-	$(PY) tutorials/00_operators.py
+	$(PY) tutorials/01_direction_matters.py
 
 test: $(STAMP)
 	$(PY) -m pytest -q

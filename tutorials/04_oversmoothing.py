@@ -24,7 +24,7 @@ bias does not by itself make the features constant; mean over 3 initializations)
   the operator itself does);
 * RenormalizedFilter layers (one A_hat product and a linear map each, Kipf & Welling 2017);
 * BandMix layers: low-pass A_hat^k channels and band-pass |Psi_j h| channels mixed by
-  attention (Min, Wenkel and Wolf 2020);
+  attention (Min et al. 2020);
 * band-pass scattering layers: DiffusionScattering (order 1, J = 2, no outer low-pass, learned
   mixing to 16 channels), whose paths are h itself and the wavelet moduli |Psi_j h|.
 
@@ -132,6 +132,9 @@ def main(argv=None) -> None:
         "BandMix + ReLU": ("BandMix", lambda f, o: pg.nn.BandMix(f, o, low_pass_steps=(1, 2), scales=2, bias=False), graph, True),
         "scattering layers + ReLU": ("DiffusionScattering", lambda f, o: ScatteringLayer(f, o), T, True),
     }
+    def cell(v, fmt=".2e"):
+        return "dead" if v != v else format(v, fmt)  # NaN: every feature is 0 after a ReLU
+
     table = {}
     for name, (needs, make, arg, relu) in stacks.items():
         if needs is not None and C.missing_layer(needs) is not None:
@@ -145,11 +148,8 @@ def main(argv=None) -> None:
             with torch.no_grad():
                 model(x, arg, record=lambda d, h, init=init: values[init, d - 1].fill_(ratio(h)))
         table[name] = values.nanmean(0)
-        shown = ", ".join(f"{d}: {float(table[name][d - 1]):.3g}" for d in depths)
+        shown = ", ".join(f"{d}: {cell(float(table[name][d - 1]), '.3g')}" for d in depths)
         print(f"-- {name}: E/(d-weighted norm) by depth {shown}  ({time.perf_counter() - t0:.1f} s)", flush=True)
-
-    def cell(v):
-        return "dead" if v != v else f"{v:.2e}"  # NaN: every feature is 0 after a ReLU
 
     rows = [(name, *[cell(float(v[d - 1])) for d in depths]) for name, v in table.items()]
     C.print_table(f"Normalized Dirichlet energy E(h) / sum d ||h||^2 after d layers ({graph.num_nodes} depots; "
