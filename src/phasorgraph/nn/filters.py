@@ -282,6 +282,30 @@ class _CachedOperators:
 
 
 # ---------------------------------------------------------------------- Chebyshev
+
+def _make_chebyshev_parameters(module: nn.Module, bias: bool, factory: dict) -> None:
+    """Register ``weight`` (K + 1, C_in, C_out[, 2]) and ``bias`` (C_out[, 2]) or None on a layer
+    that has ``order``, ``in_channels``, ``out_channels`` and ``complex_weights`` set."""
+    pair = (2,) if module.complex_weights else ()
+    shape = (module.order + 1, module.in_channels, module.out_channels) + pair
+    module.weight = nn.Parameter(torch.empty(shape, **factory))
+    if bias:
+        module.bias = nn.Parameter(torch.empty((module.out_channels,) + pair, **factory))
+    else:
+        module.register_parameter("bias", None)
+
+
+def _reset_chebyshev_parameters(module: nn.Module) -> None:
+    """U(-s, s), s = 1 / sqrt((K + 1) C_in), for weight and bias (complex pairs: see
+    :func:`init_complex_uniform_`), in place under ``torch.no_grad()``."""
+    bound = 1.0 / math.sqrt((module.order + 1) * module.in_channels)
+    init = init_complex_uniform_ if module.complex_weights else init_uniform_
+    with torch.no_grad():
+        init(module.weight, bound)
+        if module.bias is not None:
+            init(module.bias, bound)
+
+
 class ChebyshevFilter(_CachedOperators, nn.Module):
     r"""Chebyshev polynomial filter :math:`Y = \sum_{k=0}^{K} T_k(\tilde L)\, X W_k + b`.
 
@@ -342,24 +366,13 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
         self.order = _check_count("order", order, minimum=0)
         self.complex_weights = bool(complex_weights)
         self.lmax = _check_lmax(lmax)
-        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        pair = (2,) if self.complex_weights else ()
-        self.weight = nn.Parameter(torch.empty((self.order + 1, self.in_channels, self.out_channels) + pair, **factory))
-        if bias:
-            self.bias = nn.Parameter(torch.empty((self.out_channels,) + pair, **factory))
-        else:
-            self.register_parameter("bias", None)
+        _make_chebyshev_parameters(self, bias, {"device": device, "dtype": _real_factory_dtype(dtype)})
         self._operators = _OperatorCache()
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """U(-s, s) with s = 1 / sqrt((order + 1) in_channels) (complex: see the class docstring)."""
-        bound = 1.0 / math.sqrt((self.order + 1) * self.in_channels)
-        init = init_complex_uniform_ if self.complex_weights else init_uniform_
-        with torch.no_grad():
-            init(self.weight, bound)
-            if self.bias is not None:
-                init(self.bias, bound)
+        _reset_chebyshev_parameters(self)
 
     def extra_repr(self) -> str:
         s = f"{self.in_channels}, {self.out_channels}, order={self.order}"

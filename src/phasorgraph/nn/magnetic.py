@@ -11,7 +11,7 @@ from torch import nn
 
 from ..errors import GraphInputError
 from ..graph import DirectedGraph
-from ..operators import magnetic_laplacian, magnetic_product
+from ..operators import _check_phase, magnetic_laplacian, magnetic_product
 from .filters import (
     _COMPLEX_OF,
     _CachedOperators,
@@ -22,14 +22,13 @@ from .filters import (
     _chebyshev_sum,
     _complex_view,
     _empty_output,
+    _make_chebyshev_parameters,
     _real_factory_dtype,
-    init_complex_uniform_,
-    init_uniform_,
+    _reset_chebyshev_parameters,
 )
 
 __all__ = ["MagneticFilter"]
 
-_PHASES = ("difference", "sign")
 
 
 def _check_charges(charge, learn: bool) -> tuple:
@@ -150,17 +149,10 @@ class MagneticFilter(_CachedOperators, nn.Module):
                 f"out_channels must be a multiple of the number of charges ({groups}) so each charge "
                 f"gets out_channels // {groups} channels; got out_channels = {self.out_channels}"
             )
-        if phase not in _PHASES:
-            raise GraphInputError(f"phase must be one of {_PHASES}; got {phase!r}")
-        self.phase = phase
+        self.phase = _check_phase(phase)
         self.complex_weights = bool(complex_weights)
         factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        pair = (2,) if self.complex_weights else ()
-        self.weight = nn.Parameter(torch.empty((self.order + 1, self.in_channels, self.out_channels) + pair, **factory))
-        if bias:
-            self.bias = nn.Parameter(torch.empty((self.out_channels,) + pair, **factory))
-        else:
-            self.register_parameter("bias", None)
+        _make_chebyshev_parameters(self, bias, factory)
         if self.learn_charge:
             self.charge_logit = nn.Parameter(torch.empty(groups, **factory))
         self._operators = _OperatorCache()
@@ -168,12 +160,8 @@ class MagneticFilter(_CachedOperators, nn.Module):
 
     def reset_parameters(self) -> None:
         """Weights U(-s, s), s = 1 / sqrt((order + 1) in_channels); charge logits logit(2 q_0)."""
-        bound = 1.0 / math.sqrt((self.order + 1) * self.in_channels)
-        init = init_complex_uniform_ if self.complex_weights else init_uniform_
+        _reset_chebyshev_parameters(self)
         with torch.no_grad():
-            init(self.weight, bound)
-            if self.bias is not None:
-                init(self.bias, bound)
             if self.learn_charge:
                 start = torch.tensor(self.initial_charge, dtype=torch.float64)
                 self.charge_logit.copy_(torch.logit(2 * start))
