@@ -245,9 +245,7 @@ def test_values_matmul_matches_dense_and_gradcheck(values_dtype, x_dtype, hermit
 
 @pytest.mark.parametrize("values_dtype", [REAL, COMPLEX])
 @pytest.mark.parametrize("x_dtype", [REAL, COMPLEX])
-def test_values_gradient_is_a_sampled_product(values_dtype, x_dtype, monkeypatch):
-    # tiny chunks so the chunk loop runs many times
-    monkeypatch.setattr(sparse, "_SDDMM_CHUNK_ELEMENTS", 5)
+def test_values_gradient_is_a_sampled_product(values_dtype, x_dtype):
     dense = _random_dense(N, values_dtype, hermitian=False, seed=14)
     crow, col, values = _pattern(dense)
     values = values.clone().requires_grad_()
@@ -316,8 +314,7 @@ def test_pickle_round_trip_after_products():
 
 @pytest.mark.parametrize("values_dtype", [REAL, COMPLEX])
 @pytest.mark.parametrize("x_dtype", [REAL, COMPLEX])
-def test_sampled_product_fused_and_chunked_agree_with_closed_form(values_dtype, x_dtype, monkeypatch):
-    monkeypatch.setattr(sparse, "_SDDMM_CHUNK_ELEMENTS", 5)  # many chunks in the loop form
+def test_sampled_product_agrees_with_closed_form(values_dtype, x_dtype):
     crow, col, _ = _pattern(_random_dense(N, values_dtype, hermitian=False, seed=18))
     rows = sparse._row_indices(crow)
     x = _features((N, 4), x_dtype)
@@ -326,8 +323,6 @@ def test_sampled_product_fused_and_chunked_agree_with_closed_form(values_dtype, 
     expected = (g.numpy()[rows.numpy()] * np.conj(x.numpy()[col.numpy()])).sum(1)
     if not values_dtype.is_complex:
         expected = expected.real
-    fused = sparse._sampled_products(g, x, rows, col, values_dtype.is_complex, crow=crow)
-    chunked = sparse._sampled_products(g, x, rows, col, values_dtype.is_complex)
-    for got in (fused, chunked):
-        assert got.is_complex() == values_dtype.is_complex
-        np.testing.assert_allclose(got.numpy(), expected, rtol=1e-12, atol=1e-12)
+    got = sparse._sampled_products(g, x, crow, col, values_dtype.is_complex)
+    assert got.is_complex() == values_dtype.is_complex
+    np.testing.assert_allclose(got.numpy(), expected, rtol=1e-12, atol=1e-12)
