@@ -49,25 +49,7 @@ def time_stats(fn: Callable[[], object], repeats: int = 5, warmup: int = 1,
     run) once the timed runs have used that much wall time, so slow baselines stay affordable.
     The garbage collector is paused during the timed runs.
     """
-    for _ in range(max(0, warmup)):
-        fn()
-    times = []
-    enabled = gc.isenabled()
-    gc.disable()
-    try:
-        spent = 0.0
-        for _ in range(max(1, repeats)):
-            t0 = time.perf_counter()
-            fn()
-            dt = time.perf_counter() - t0
-            times.append(dt)
-            spent += dt
-            if max_seconds is not None and spent >= max_seconds:
-                break
-    finally:
-        if enabled:
-            gc.enable()
-    return {"median": statistics.median(times), "min": min(times), "max": max(times), "repeats": len(times)}
+    return interleaved_times({"fn": fn}, repeats=repeats, warmup=warmup, max_seconds=max_seconds)["fn"]
 
 
 def median_time(fn: Callable[[], object], repeats: int = 5, warmup: int = 1,

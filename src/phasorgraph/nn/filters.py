@@ -283,27 +283,37 @@ class _CachedOperators:
 
 # ---------------------------------------------------------------------- Chebyshev
 
-def _make_chebyshev_parameters(module: nn.Module, bias: bool, factory: dict) -> None:
-    """Register ``weight`` (K + 1, C_in, C_out[, 2]) and ``bias`` (C_out[, 2]) or None on a layer
-    that has ``order``, ``in_channels``, ``out_channels`` and ``complex_weights`` set."""
-    pair = (2,) if module.complex_weights else ()
-    shape = (module.order + 1, module.in_channels, module.out_channels) + pair
-    module.weight = nn.Parameter(torch.empty(shape, **factory))
+def _make_parameters(module: nn.Module, weight_shape: tuple, bias: bool, factory: dict,
+                     complex_pairs: bool = False) -> None:
+    """Register ``weight`` of ``weight_shape`` and ``bias`` (C_out,) or None; a trailing axis of 2
+    holds (real, imaginary) pairs when ``complex_pairs``."""
+    pair = (2,) if complex_pairs else ()
+    module.weight = nn.Parameter(torch.empty(tuple(weight_shape) + pair, **factory))
     if bias:
         module.bias = nn.Parameter(torch.empty((module.out_channels,) + pair, **factory))
     else:
         module.register_parameter("bias", None)
 
 
-def _reset_chebyshev_parameters(module: nn.Module) -> None:
-    """U(-s, s), s = 1 / sqrt((K + 1) C_in), for weight and bias (complex pairs: see
-    :func:`init_complex_uniform_`), in place under ``torch.no_grad()``."""
-    bound = 1.0 / math.sqrt((module.order + 1) * module.in_channels)
-    init = init_complex_uniform_ if module.complex_weights else init_uniform_
+def _reset_uniform(module: nn.Module, bound: float, complex_pairs: bool = False) -> None:
+    """U(-bound, bound) for weight and bias (complex pairs: :func:`init_complex_uniform_`),
+    in place under ``torch.no_grad()``."""
+    init = init_complex_uniform_ if complex_pairs else init_uniform_
     with torch.no_grad():
         init(module.weight, bound)
         if module.bias is not None:
             init(module.bias, bound)
+
+
+def _make_chebyshev_parameters(module: nn.Module, bias: bool, factory: dict) -> None:
+    """Weight (K + 1, C_in, C_out[, 2]) and bias of a Chebyshev-type layer."""
+    _make_parameters(module, (module.order + 1, module.in_channels, module.out_channels), bias, factory,
+                     module.complex_weights)
+
+
+def _reset_chebyshev_parameters(module: nn.Module) -> None:
+    """U(-s, s), s = 1 / sqrt((K + 1) C_in), for weight and bias."""
+    _reset_uniform(module, 1.0 / math.sqrt((module.order + 1) * module.in_channels), module.complex_weights)
 
 
 class ChebyshevFilter(_CachedOperators, nn.Module):
@@ -468,21 +478,13 @@ class RenormalizedFilter(_CachedOperators, nn.Module):
         self.in_channels = _check_count("in_channels", in_channels)
         self.out_channels = _check_count("out_channels", out_channels)
         factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        self.weight = nn.Parameter(torch.empty(self.in_channels, self.out_channels, **factory))
-        if bias:
-            self.bias = nn.Parameter(torch.empty(self.out_channels, **factory))
-        else:
-            self.register_parameter("bias", None)
+        _make_parameters(self, (self.in_channels, self.out_channels), bias, factory)
         self._operators = _OperatorCache()
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """U(-s, s) with s = 1 / sqrt(in_channels) for weight and bias."""
-        bound = 1.0 / math.sqrt(self.in_channels)
-        with torch.no_grad():
-            init_uniform_(self.weight, bound)
-            if self.bias is not None:
-                init_uniform_(self.bias, bound)
+        _reset_uniform(self, 1.0 / math.sqrt(self.in_channels))
 
     def extra_repr(self) -> str:
         return f"{self.in_channels}, {self.out_channels}" + (", bias=False" if self.bias is None else "")
@@ -657,20 +659,12 @@ class SpectralMultiplier(nn.Module):
             self.num_nodes = None
             size = len(positions)
         factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        self.weight = nn.Parameter(torch.empty(size, self.in_channels, self.out_channels, **factory))
-        if bias:
-            self.bias = nn.Parameter(torch.empty(self.out_channels, **factory))
-        else:
-            self.register_parameter("bias", None)
+        _make_parameters(self, (size, self.in_channels, self.out_channels), bias, factory)
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """U(-s, s) with s = 1 / sqrt(in_channels) for the multiplier values and the bias."""
-        bound = 1.0 / math.sqrt(self.in_channels)
-        with torch.no_grad():
-            init_uniform_(self.weight, bound)
-            if self.bias is not None:
-                init_uniform_(self.bias, bound)
+        _reset_uniform(self, 1.0 / math.sqrt(self.in_channels))
 
     @property
     def per_eigenvalue(self) -> bool:
