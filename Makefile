@@ -12,7 +12,7 @@ STAMP := $(VENV)/.installed
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet "$(TORCH_SPEC)"
-	$(PY) -m pip install --quiet -e ".[test,tutorials]"
+	$(PY) -m pip install --quiet -e ".[test,tutorials,tables]"
 	touch $(STAMP)
 
 venv: $(STAMP)

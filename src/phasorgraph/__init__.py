@@ -3,7 +3,7 @@
 from .errors import GraphInputError
 from .graph import DirectedGraph
 from .sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
-from . import data, nn, operators, segments, spectral
+from . import data, nn, operators, segments, spectral, tables
 from .operators import (
     combinatorial_laplacian,
     diffusion,
@@ -33,6 +33,7 @@ __all__ = [
     "nn",
     "data",
     "segments",
+    "tables",
     "combinatorial_laplacian",
     "normalized_laplacian",
     "random_walk_laplacian",

@@ -74,6 +74,21 @@ def _as_weight_tensor(value: Any, num_edges: int) -> torch.Tensor:
     return w.contiguous()
 
 
+def _check_node_names(names: Any, num_nodes: int):
+    """None, or a read-only 1-D numpy array of num_nodes distinct ids (delegates to tables)."""
+    if names is None:
+        return None
+    from .tables import _as_node_names
+
+    return _as_node_names("node_names", names, num_nodes)
+
+
+def _same_names(a, b) -> bool:
+    if a is None or b is None:
+        return a is b
+    return a.shape == b.shape and bool(np.all(a == b))
+
+
 class DirectedGraph:
     r"""A directed weighted graph on nodes ``0 .. num_nodes - 1``, stored as canonical edges.
 
@@ -92,6 +107,9 @@ class DirectedGraph:
             refused here.
         num_nodes: number of nodes N (>= every index + 1; default largest index + 1). Nodes
             without edges are isolated.
+        node_names: keyword-only; None (default) or a sequence of N distinct hashable ids, the
+            original id of each node in node order (set by :meth:`from_table`; see
+            :meth:`index_of`). Every helper that returns a new graph carries them along.
 
     Raises:
         GraphInputError: indices that are negative, non-integer or >= num_nodes; source and
@@ -102,6 +120,7 @@ class DirectedGraph:
         source, target (Tensor): int64 (E,), sorted by (source, target).
         weight (Tensor): float64 (E,), non-zero.
         num_nodes (int), num_edges (int).
+        node_names (numpy.ndarray or None): read-only (N,) array of the original node ids.
 
     Example:
         >>> g = DirectedGraph.from_edges([[0, 1, 1], [1, 2, 2]], weight=[1.0, 2.0, 3.0])
@@ -109,9 +128,10 @@ class DirectedGraph:
         (3, 2, [1.0, 5.0])
     """
 
-    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache")
+    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache", "_node_names")
 
-    def __init__(self, source: Any, target: Any, weight: Any = None, num_nodes: int | None = None):
+    def __init__(self, source: Any, target: Any, weight: Any = None, num_nodes: int | None = None, *,
+                 node_names: Any = None):
         src = _as_index_tensor("source", source)
         dst = _as_index_tensor("target", target)
         if src.numel() != dst.numel():
@@ -141,6 +161,7 @@ class DirectedGraph:
                 which = "source" if src.numel() and int(src.max()) == largest else "target"
                 raise GraphInputError(f"{which} holds node {largest} but num_nodes is {num_nodes}")
         self._num_nodes = num_nodes
+        self._node_names = _check_node_names(node_names, num_nodes)
         self._source, self._target, self._weight = self._canonical(src, dst, w, num_nodes)
         self._cache: dict = {}
 
@@ -195,6 +216,27 @@ class DirectedGraph:
     def num_edges(self) -> int:
         return int(self._source.numel())
 
+    @property
+    def node_names(self):
+        """Original node ids (read-only numpy array (N,)), or None for a graph built from integers."""
+        return self._node_names
+
+    def index_of(self, names: Any) -> torch.Tensor:
+        """Node numbers of the given original ids: int64 tensor, one per id (a scalar id gives 0-dim).
+
+        Raises:
+            GraphInputError: the graph has no node_names, or some ids are not nodes of the
+                graph (the message names a few of them and how many are missing).
+
+        Example:
+            >>> g = DirectedGraph.from_table({"source": ["b", "a"], "target": ["a", "c"]})
+            >>> g.node_names.tolist(), g.index_of(["c", "b"]).tolist()
+            (['b', 'a', 'c'], [2, 0])
+        """
+        from .tables import _index_of
+
+        return _index_of(self, names)
+
     def __repr__(self) -> str:
         return f"DirectedGraph(num_nodes={self.num_nodes}, num_edges={self.num_edges})"
 
@@ -206,16 +248,21 @@ class DirectedGraph:
             and torch.equal(self.source, other.source)
             and torch.equal(self.target, other.target)
             and torch.equal(self.weight, other.weight)
+            and _same_names(self._node_names, other._node_names)
         )
 
     __hash__ = object.__hash__
 
     def __getstate__(self):
-        return {"source": self._source, "target": self._target, "weight": self._weight, "num_nodes": self._num_nodes}
+        return {"source": self._source, "target": self._target, "weight": self._weight, "num_nodes": self._num_nodes,
+                "node_names": self._node_names}
 
     def __setstate__(self, state):
         self._source, self._target = state["source"], state["target"]
         self._weight, self._num_nodes = state["weight"], state["num_nodes"]
+        self._node_names = state.get("node_names")
+        if self._node_names is not None:
+            self._node_names.flags.writeable = False
         self._cache = {}
 
     # ------------------------------------------------------------------ constructors
@@ -316,6 +363,21 @@ class DirectedGraph:
             )
         return cls(np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64), vals_arr, len(index))
 
+    @classmethod
+    def from_table(cls, table: Any, source: str = "source", target: str = "target", weight: str | None = None, *,
+                   weight_transform: Any = None, nodes: Any = None) -> "DirectedGraph":
+        """Build from an edge table whose ids may be any hashable values; see :func:`phasorgraph.tables.graph_from_table`.
+
+        Example:
+            >>> g = DirectedGraph.from_table({"source": ["b", "a", "b"], "target": ["a", "c", "a"],
+            ...                               "amount": [2.0, 5.0, 3.0]}, weight="amount")
+            >>> g.node_names.tolist(), g.weight.tolist()
+            (['b', 'a', 'c'], [5.0, 5.0])
+        """
+        from .tables import graph_from_table
+
+        return graph_from_table(table, source, target, weight, weight_transform=weight_transform, nodes=nodes)
+
     # ------------------------------------------------------------------ adapters out
     def to_scipy(self, format: str = "csr") -> sp.spmatrix:
         """The weighted adjacency A (N, N) as a scipy sparse matrix, A[u, v] = w(u -> v)."""
@@ -337,13 +399,14 @@ class DirectedGraph:
     # ------------------------------------------------------------------ helpers
     def reverse(self) -> "DirectedGraph":
         """Every edge u -> v becomes v -> u (adjacency A^T)."""
-        return DirectedGraph(self._target, self._source, self._weight, self.num_nodes)
+        return DirectedGraph(self._target, self._source, self._weight, self.num_nodes, node_names=self._node_names)
 
     def symmetrized(self) -> "DirectedGraph":
         """The graph of As = (A + A^T) / 2: both directions, each with half the summed weight."""
         src = torch.cat([self._source, self._target])
         dst = torch.cat([self._target, self._source])
-        return DirectedGraph(src, dst, torch.cat([self._weight, self._weight]) / 2, self.num_nodes)
+        return DirectedGraph(src, dst, torch.cat([self._weight, self._weight]) / 2, self.num_nodes,
+                             node_names=self._node_names)
 
     def permute(self, perm: Any) -> "DirectedGraph":
         """Relabel nodes: node ``perm[i]`` of this graph becomes node ``i`` of the result.
@@ -361,7 +424,8 @@ class DirectedGraph:
             )
         inverse = torch.empty_like(p)
         inverse[p] = torch.arange(n)
-        return DirectedGraph(inverse[self._source], inverse[self._target], self._weight, n)
+        names = None if self._node_names is None else self._node_names[p.numpy()]
+        return DirectedGraph(inverse[self._source], inverse[self._target], self._weight, n, node_names=names)
 
     def locality_order(self) -> tuple["DirectedGraph", torch.Tensor]:
         """Reorder nodes for memory locality by reverse Cuthill-McKee on the pattern of A + A^T.
@@ -400,4 +464,5 @@ class DirectedGraph:
         keep = torch.as_tensor(keep, dtype=torch.bool)
         if keep.shape != (self.num_edges,):
             raise GraphInputError(f"keep must be a boolean mask of shape ({self.num_edges},); got {tuple(keep.shape)}")
-        return DirectedGraph(self._source[keep], self._target[keep], self._weight[keep], self.num_nodes)
+        return DirectedGraph(self._source[keep], self._target[keep], self._weight[keep], self.num_nodes,
+                             node_names=self._node_names)

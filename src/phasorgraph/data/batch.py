@@ -24,6 +24,25 @@ __all__ = ["GraphBatch", "iterate_batches"]
 _REDUCE = {"mean": segment_mean, "sum": segment_sum, "max": segment_max}
 
 
+def _batch_names(graphs: Sequence[DirectedGraph]):
+    """Node names of the batch graph: (graph position, name) pairs, or None if no graph has names.
+
+    A graph without names contributes its node numbers as names. One pass over the nodes, only
+    when some graph has names.
+    """
+    if all(g.node_names is None for g in graphs):
+        return None
+    total = sum(g.num_nodes for g in graphs)
+
+    def pairs():
+        for i, g in enumerate(graphs):
+            names = range(g.num_nodes) if g.node_names is None else g.node_names.tolist()
+            for name in names:
+                yield (i, name)
+
+    return np.fromiter(pairs(), dtype=object, count=total)
+
+
 class GraphBatch:
     r"""Several DirectedGraphs joined as one block-diagonal graph, and per-graph readouts.
 
@@ -37,6 +56,10 @@ class GraphBatch:
         num_graphs (int): G.
         num_nodes_per_graph (Tensor): int64 (G,).
         node_offsets (Tensor): int64 (G + 1,), first node of each graph, then N.
+
+    When some of the graphs have ``node_names`` (e.g. from ``DirectedGraph.from_table``), the
+    batch graph's ``node_names`` are ``(graph position, name)`` pairs (a graph without names
+    contributes its node numbers), so ``batch.graph.index_of([(1, "depot_7")])`` finds a node.
 
     Example:
         >>> from phasorgraph.data import directed_cycle, out_star
@@ -66,7 +89,7 @@ class GraphBatch:
         src = cat([g.source for g in graphs]).to(torch.int64) + shift
         dst = cat([g.target for g in graphs]).to(torch.int64) + shift
         weight = cat([g.weight for g in graphs]).to(torch.float64)
-        self.graph = DirectedGraph(src, dst, weight, int(offsets[-1]))
+        self.graph = DirectedGraph(src, dst, weight, int(offsets[-1]), node_names=_batch_names(graphs))
         self.graph_index = torch.repeat_interleave(torch.arange(len(graphs)), sizes)
         self.num_graphs = len(graphs)
         self.num_nodes_per_graph = sizes
