@@ -45,8 +45,8 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 import torch  # noqa: E402
 
 from _common import print_table, write_results  # noqa: E402
-from phasorgraph import DirectedGraph  # noqa: E402
-from phasorgraph.nn import MagneticFilter  # noqa: E402
+from phasorgraph import DirectedGraph, magnetic_laplacian  # noqa: E402
+from phasorgraph.nn import LearnedCharge, MagneticFilter  # noqa: E402
 
 CHANNELS = 64
 ORDER = 3
@@ -200,7 +200,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0, with_baseline: bool = T
     for learned in (False, True):
         torch.manual_seed(seed)
         start = 0.02 if learned else CHARGE
-        layer = MagneticFilter(CHANNELS, CHANNELS, ORDER, charge=start, learn_charge=learned)
+        layer = MagneticFilter(CHANNELS, CHANNELS, ORDER, charge=LearnedCharge(start=start) if learned else start)
         if learned:
             with torch.no_grad():
                 layer.charge_logit.fill_(math.log(2 * CHARGE / (1 - 2 * CHARGE)))   # q = 0.25
@@ -214,7 +214,8 @@ def measure(num_edges: int, repeats: int, seed: int = 0, with_baseline: bool = T
         package_step()                                     # warm-up; builds and caches the operator
         op = None
         if not learned:
-            op = next(iter(layer._operators._items.values()))[1]
+            op = graph.operator(magnetic_laplacian, charge=CHARGE, normalized=True, phase="difference",
+                                dtype=torch.complex64, device=x.device)     # the one the layer built
             nnz = op.nnz
         else:
             nnz = pattern_nnz                                   # the values magnetic_matmul builds

@@ -45,6 +45,7 @@ from phasorgraph.nn import (
     Cardioid,
     ChebyshevFilter,
     ComplexToReal,
+    LearnedCharge,
     MagneticFilter,
     ModReLU,
     RealPartGate,
@@ -280,11 +281,11 @@ SPECS = [
               operand=lambda g, p: normalized_laplacian(g, dtype=p),
               reference=_ref_chebyshev(np_normalized_laplacian), repr_contains=("order=0",)),
     LayerSpec("chebyshev_magnetic_complex_weights", "filters",
-              lambda **kw: ChebyshevFilter(2, 3, order=2, complex_weights=True, lmax=2.0, **kw), 2,
+              lambda **kw: ChebyshevFilter(2, 3, order=2, complex_weights=True, max_eigenvalue=2.0, **kw), 2,
               complex_input=True,
               operand=lambda g, p: magnetic_laplacian(g, 0.2, dtype=_cplx(p)),
               reference=_ref_chebyshev(lambda A: np_normalized_magnetic_laplacian(A, 0.2), lmax=2.0),
-              repr_contains=("complex_weights=True", "lmax=2.0")),
+              repr_contains=("complex_weights=True", "max_eigenvalue=2.0")),
     LayerSpec("renormalized_graph", "filters", lambda **kw: RenormalizedFilter(3, 5, **kw), 3,
               operand=lambda g, p: g, reference=_ref_renormalized,
               repr_contains=("RenormalizedFilter(3, 5)",)),
@@ -315,11 +316,11 @@ SPECS = [
               complex_input=True, operand=lambda g, p: g, reference=_ref_magnetic,
               repr_contains=("charge=[0.0, 0.1, 0.3]", "complex_weights=True")),
     LayerSpec("magnetic_learned", "magnetic",
-              lambda **kw: MagneticFilter(3, 4, order=2, charge=0.15, learn_charge=True, **kw), 3,
+              lambda **kw: MagneticFilter(3, 4, order=2, charge=LearnedCharge(start=0.15), **kw), 3,
               complex_input=True, operand=lambda g, p: g, reference=_ref_magnetic,
-              repr_contains=("learn_charge=True",)),
+              repr_contains=("charge=LearnedCharge(start=0.15), charge_now=0.15",)),
     LayerSpec("magnetic_learned_bank_sign", "magnetic",
-              lambda **kw: MagneticFilter(2, 4, order=1, charge=[0.05, 0.3], learn_charge=True, phase="sign",
+              lambda **kw: MagneticFilter(2, 4, order=1, charge=LearnedCharge(start=[0.05, 0.3]), phase="sign",
                                           bias=False, **kw), 2,
               operand=lambda g, p: g, reference=_ref_magnetic,
               repr_contains=("phase='sign'", "bias=False")),
@@ -408,7 +409,10 @@ def check_pickle_and_state_dict(spec: LayerSpec):
     buf.seek(0)
     torch.testing.assert_close(torch.load(buf, weights_only=False)(*args), out)
     other = _build(spec, seed=1, dtype=torch.float64)
-    other.load_state_dict(m.state_dict())
+    buf = io.BytesIO()
+    torch.save(m.state_dict(), buf)
+    buf.seek(0)
+    other.load_state_dict(torch.load(buf, weights_only=True))   # plain tensors and numbers only
     torch.testing.assert_close(other(*args), out)
     for value in m.state_dict().values():
         assert value.layout == torch.strided   # no sparse tensor is ever a buffer/parameter

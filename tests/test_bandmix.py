@@ -86,16 +86,17 @@ def test_operator_cache_per_graph_and_no_sparse_state():
     g, x = _graph(), _x()
     layer = BandMix(3, 4, (1,), 1, dtype=torch.float64)
     layer(x, g)
-    first = layer._operators
+    first = g.operator(operators.renormalized_adjacency, dtype=torch.float64, device=x.device)
     layer(x, g)
-    assert layer._operators is first  # same graph object: nothing rebuilt
+    # same graph object: nothing rebuilt (the operators are kept with the graph)
+    assert g.operator(operators.renormalized_adjacency, dtype=torch.float64, device=x.device) is first
     g2 = _graph()
     layer(x, g2)
-    assert layer._operators[0] is g2
+    assert g2.operator(operators.renormalized_adjacency, dtype=torch.float64, device=x.device) is not first
+    assert not hasattr(layer, "_operators")
     assert all(not t.is_sparse and t.layout == torch.strided for t in layer.state_dict().values())
     assert set(layer.state_dict()) == {"weight", "bias", "attention"}
     clone = pickle.loads(pickle.dumps(layer))
-    assert clone._operators is None
     torch.testing.assert_close(clone(x, g), layer(x, g))
 
 
@@ -128,5 +129,5 @@ def test_refuses_bad_inputs():
         layer(torch.zeros(7, 2, dtype=torch.float64), _graph())
     with pytest.raises(GraphInputError, match=r"x must be real float32 or float64 for BandMix"):
         layer(torch.zeros(7, 3, dtype=torch.complex128), _graph())
-    with pytest.raises(GraphInputError, match=r"graph must be a DirectedGraph; got SparseOperator"):
+    with pytest.raises(GraphInputError, match=r"graph must be a DirectedGraph .*for BandMix; got SparseOperator"):
         layer(torch.zeros(7, 3, dtype=torch.float64), operators.diffusion(_graph()))

@@ -22,7 +22,7 @@ from torch import nn
 
 from phasorgraph import DirectedGraph
 from phasorgraph.data import GraphBatch, directed_block_model, random_out_graph
-from phasorgraph.nn import MagneticFilter
+from phasorgraph.nn import LearnedCharge, MagneticFilter
 from phasorgraph.operators import magnetic_matmul
 
 WORLD = 2
@@ -51,7 +51,7 @@ class FilterRegressor(nn.Module):
 
     def __init__(self, channels: int = CHANNELS):
         super().__init__()
-        self.learned = MagneticFilter(channels, 4, order=2, charge=0.1, learn_charge=True, dtype=torch.float64)
+        self.learned = MagneticFilter(channels, 4, order=2, charge=LearnedCharge(start=0.1), dtype=torch.float64)
         self.fixed = MagneticFilter(channels, 2, order=1, charge=0.25, dtype=torch.float64)
         self.linear = nn.Linear(6, 1, dtype=torch.float64)
 

@@ -39,29 +39,29 @@ def test_generic(spec, check):
 def test_chebyshev_lmax_is_computed_once_and_kept_on_the_operator():
     g, A = reference_graph()
     op = combinatorial_laplacian(g, dtype=torch.float64)
-    assert op.lmax is None
+    assert op.max_eigenvalue is None
     layer = ChebyshevFilter(3, 2, order=2, dtype=torch.float64)
     x = features(7, 3, torch.float64, False)
     layer(x, op)
     # source: numpy.linalg.eigvalsh of D - As
     As = (A + A.T) / 2
     expected = np.linalg.eigvalsh(np.diag(As.sum(1)) - As)[-1]
-    assert op.lmax == pytest.approx(expected, rel=1e-8)
+    assert op.max_eigenvalue == pytest.approx(expected, rel=1e-8)
 
 
 def test_chebyshev_fixed_lmax_skips_the_eigenvalue_and_forward_lmax_overrides():
     g, A = reference_graph()
     op = normalized_laplacian(g, dtype=torch.float64)
     x = features(7, 3, torch.float64, False)
-    layer = ChebyshevFilter(3, 2, order=3, lmax=2.0, dtype=torch.float64)
+    layer = ChebyshevFilter(3, 2, order=3, max_eigenvalue=2.0, dtype=torch.float64)
     y2 = layer(x, op)
-    assert op.lmax is None
+    assert op.max_eigenvalue is None
     W = layer.weight.detach().numpy()
     L = np_normalized_magnetic_laplacian(A, 0.0).real
     b = layer.bias.detach().numpy()
     # source: numpy.linalg.eigh + numpy.polynomial.chebyshev.chebval (layer_specs.np_chebyshev_filter)
     np.testing.assert_allclose(y2.detach().numpy(), np_chebyshev_filter(L, x.numpy(), W, 2.0) + b, atol=1e-10)
-    y15 = layer(x, op, lmax=1.5)
+    y15 = layer(x, op, max_eigenvalue=1.5)
     np.testing.assert_allclose(y15.detach().numpy(), np_chebyshev_filter(L, x.numpy(), W, 1.5) + b, atol=1e-10)
 
 
@@ -243,10 +243,10 @@ def test_constructor_arguments_are_checked():
         ChebyshevFilter(3, 2, order=1.5)
     with pytest.raises(GraphInputError, match=r"in_channels must be an integer >= 1; got 0"):
         ChebyshevFilter(0, 2, order=1)
-    with pytest.raises(GraphInputError, match=r"lmax must be a finite number > 0"):
-        ChebyshevFilter(3, 2, order=1, lmax=0.0)
+    with pytest.raises(GraphInputError, match=r"max_eigenvalue must be a finite number > 0"):
+        ChebyshevFilter(3, 2, order=1, max_eigenvalue=0.0)
     with pytest.raises(GraphInputError, match=r"dtype must be torch.float32 or torch.float64"):
         RenormalizedFilter(3, 2, dtype=torch.int64)
     g, _ = reference_graph()
-    with pytest.raises(GraphInputError, match=r"lmax \(forward\) must be a finite number > 0"):
-        ChebyshevFilter(3, 2, order=1)(features(7, 3, torch.float32, False), normalized_laplacian(g), lmax=-2)
+    with pytest.raises(GraphInputError, match=r"max_eigenvalue \(forward\) must be a finite number > 0"):
+        ChebyshevFilter(3, 2, order=1)(features(7, 3, torch.float32, False), normalized_laplacian(g), max_eigenvalue=-2)

@@ -15,7 +15,7 @@ import torch
 from hypothesis import given
 from scipy.sparse.csgraph import reverse_cuthill_mckee
 
-from phasorgraph import DirectedGraph, magnetic_laplacian, normalized_laplacian
+from phasorgraph import DirectedGraph, GraphInputError, magnetic_laplacian, normalized_laplacian
 from strategies import directed_graphs, edge_lists, graphs_and_permutations
 
 
@@ -284,3 +284,42 @@ def test_sparse_node_range_fallback_matches_main_path(raw):
     huge = DirectedGraph(src, dst, w, 10**7)  # 10**7 > 4 E + 4096: the sort-based route
     assert torch.equal(small.source, huge.source) and torch.equal(small.target, huge.target)
     torch.testing.assert_close(small.weight, huge.weight, rtol=1e-15, atol=1e-15)
+
+
+# ---------------------------------------------------------------------- the graph-like protocol
+def test_equal_graphs_hash_alike_and_are_weakly_referenceable():
+    import weakref
+
+    a = DirectedGraph.from_edges([[0, 1, 1], [1, 2, 2]], weight=[1.0, 2.0, 3.0])
+    b = DirectedGraph.from_edges([[1, 0], [2, 1]], weight=[5.0, 1.0])
+    assert a == b and hash(a) == hash(b) and len({a, b}) == 1   # Python's rule: a == b implies equal hashes
+    assert a != a.reverse()
+    ref = weakref.ref(a)
+    assert ref() is a
+
+
+def test_operator_is_built_once_kept_with_the_graph_and_freed_with_it():
+    import gc
+    import weakref
+
+    g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+    op = g.operator(magnetic_laplacian, charge=0.1, dtype=torch.complex128)
+    assert g.operator(magnetic_laplacian, charge=0.1, dtype=torch.complex128) is op
+    assert g.operator(magnetic_laplacian, charge=0.2, dtype=torch.complex128) is not op
+    # source: the builder itself, called directly
+    torch.testing.assert_close(op.to_dense(), magnetic_laplacian(g, 0.1, dtype=torch.complex128).to_dense())
+    assert g.num_rows == g.num_nodes == 3
+    g.clear_cache()
+    assert g.operator(magnetic_laplacian, charge=0.1, dtype=torch.complex128) is not op
+    dead = weakref.ref(g.operator(normalized_laplacian))
+    del g, op
+    gc.collect()
+    assert dead() is None            # nothing outside the graph kept its operators alive
+
+
+def test_operator_refuses_unhashable_options_and_non_functions():
+    g = DirectedGraph.from_edges([[0], [1]])
+    with pytest.raises(GraphInputError, match=r"option 'charge' of graph.operator must be hashable .*got list"):
+        g.operator(magnetic_laplacian, charge=[0.1])
+    with pytest.raises(GraphInputError, match=r"builder must be a function graph -> operator; got str"):
+        g.operator("magnetic_laplacian")

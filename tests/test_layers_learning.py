@@ -23,7 +23,7 @@ import torch
 from torch import nn
 
 from phasorgraph import DirectedGraph
-from phasorgraph.nn import ComplexToReal, MagneticFilter
+from phasorgraph.nn import ComplexToReal, LearnedCharge, MagneticFilter
 
 
 BLOCK = 60
@@ -51,7 +51,7 @@ def train(seed: int, charge: float, learn: bool):
     torch.manual_seed(seed)
     order = torch.randperm(2 * BLOCK)
     train_idx, test_idx = order[:BLOCK], order[BLOCK:]
-    filt = MagneticFilter(1, 8, order=1, charge=charge, learn_charge=learn)
+    filt = MagneticFilter(1, 8, order=1, charge=LearnedCharge(start=charge) if learn else charge)
     head = nn.Sequential(ComplexToReal("cartesian"), nn.ReLU(), nn.Linear(16, 2))
     opt = torch.optim.Adam(list(filt.parameters()) + list(head.parameters()), lr=0.05)
     x = torch.ones(2 * BLOCK, 1)

@@ -23,9 +23,14 @@ from layer_specs import (
 )
 from strategies import charges, graphs_and_permutations
 from phasorgraph import DirectedGraph, GraphInputError, normalized_laplacian
-from phasorgraph.nn import ChebyshevFilter, MagneticFilter
+from phasorgraph.nn import ChebyshevFilter, LearnedCharge, MagneticFilter
 from phasorgraph.nn import magnetic as magnetic_module
 
+
+
+def weights_of(layer):
+    """The state_dict without the saved fixed charge, to move weights between layer kinds."""
+    return {k: v for k, v in layer.state_dict().items() if k != "fixed_charge"}
 
 
 @pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)
@@ -37,20 +42,20 @@ def test_generic(spec, check):
 # ---------------------------------------------------------------------- reductions and identities
 @pytest.mark.parametrize("learn", [False, True])
 def test_charge_zero_equals_chebyshev_on_the_normalized_laplacian_of_As(learn):
-    # q = 0: the magnetic Laplacian is the normalized Laplacian of As (DESIGN.md), lmax = 2
+    # q = 0: the magnetic Laplacian is the normalized Laplacian of As (DESIGN.md), max_eigenvalue = 2
     g, _ = reference_graph()
     torch.manual_seed(0)
     mag = MagneticFilter(3, 4, order=3, charge=0.0, dtype=torch.float64)
-    cheb = ChebyshevFilter(3, 4, order=3, lmax=2.0, dtype=torch.float64)
-    cheb.load_state_dict(mag.state_dict())
+    cheb = ChebyshevFilter(3, 4, order=3, max_eigenvalue=2.0, dtype=torch.float64)
+    cheb.load_state_dict(weights_of(mag))
     x = features(7, 3, torch.float64, False)
     y = mag(x, g)
     torch.testing.assert_close(y.real, cheb(x, normalized_laplacian(g, dtype=torch.float64)))
     torch.testing.assert_close(y.imag, torch.zeros_like(y.imag))
     if learn:
         # a learned charge driven to (numerically) zero reaches the same operator
-        lm = MagneticFilter(3, 4, order=3, charge=0.1, learn_charge=True, dtype=torch.float64)
-        lm.load_state_dict({**mag.state_dict(), "charge_logit": torch.tensor([-80.0], dtype=torch.float64)})
+        lm = MagneticFilter(3, 4, order=3, charge=LearnedCharge(start=0.1), dtype=torch.float64)
+        lm.load_state_dict({**weights_of(mag), "charge_logit": torch.tensor([-80.0], dtype=torch.float64)})
         torch.testing.assert_close(lm(x, g), y)
 
 
@@ -58,8 +63,8 @@ def test_learned_charge_forward_matches_the_fixed_charge_operator():
     g, _ = reference_graph()
     torch.manual_seed(0)
     fixed = MagneticFilter(2, 4, order=3, charge=0.17, dtype=torch.float64)
-    learned = MagneticFilter(2, 4, order=3, charge=0.17, learn_charge=True, dtype=torch.float64)
-    learned.load_state_dict({**fixed.state_dict(), "charge_logit": learned.charge_logit.detach()})
+    learned = MagneticFilter(2, 4, order=3, charge=LearnedCharge(start=0.17), dtype=torch.float64)
+    learned.load_state_dict({**weights_of(fixed), "charge_logit": learned.charge_logit.detach()})
     x = features(7, 2, torch.float64, True)
     torch.testing.assert_close(learned(x, g), fixed(x, g))
 
@@ -73,7 +78,8 @@ def test_bank_channel_groups_follow_the_documented_split():
     y = bank(x, g)
     for k, q in enumerate([0.0, 0.1, 0.4]):
         single = MagneticFilter(3, 2, order=2, charge=q, dtype=torch.float64)
-        single.load_state_dict({"weight": bank.weight[:, :, 2 * k:2 * k + 2], "bias": bank.bias[2 * k:2 * k + 2]})
+        single.load_state_dict({"weight": bank.weight[:, :, 2 * k:2 * k + 2], "bias": bank.bias[2 * k:2 * k + 2],
+                                "fixed_charge": torch.tensor([q], dtype=torch.float64)})
         torch.testing.assert_close(y[:, 2 * k:2 * k + 2], single(x, g))
 
 
@@ -101,13 +107,13 @@ def test_charge_attribute_shapes_and_values():
     assert float(MagneticFilter(2, 2, 1, charge=0.3).charge) == pytest.approx(0.3)
     bank = MagneticFilter(2, 4, 1, charge=[0.1, 0.2])
     torch.testing.assert_close(bank.charge, torch.tensor([0.1, 0.2]))
-    learned = MagneticFilter(2, 4, 1, charge=[0.02, 0.45], learn_charge=True, dtype=torch.float64)
+    learned = MagneticFilter(2, 4, 1, charge=LearnedCharge(start=[0.02, 0.45]), dtype=torch.float64)
     torch.testing.assert_close(learned.charge.detach(), torch.tensor([0.02, 0.45], dtype=torch.float64))
     assert learned.charge.requires_grad
 
 
 def test_charge_map_stays_in_range_and_has_no_flat_spot_at_the_start():
-    layer = MagneticFilter(1, 1, 0, charge=0.02, learn_charge=True, dtype=torch.float64)
+    layer = MagneticFilter(1, 1, 0, charge=LearnedCharge(start=0.02), dtype=torch.float64)
     q = layer.charge
     q.backward()
     # closed form: q = sigmoid(u) / 2 gives dq/du = q (1 - 2 q), far from 0 at q = 0.02
@@ -122,13 +128,13 @@ def test_charge_map_stays_in_range_and_has_no_flat_spot_at_the_start():
 
 def test_loss_gradient_reaches_the_learned_charge():
     g, _ = reference_graph()
-    layer = MagneticFilter(1, 2, order=2, charge=0.02, learn_charge=True, dtype=torch.float64)
+    layer = MagneticFilter(1, 2, order=2, charge=LearnedCharge(start=0.02), dtype=torch.float64)
     layer(torch.ones(7, 1, dtype=torch.float64), g).imag.pow(2).sum().backward()
     assert float(layer.charge_logit.grad.abs()) > 0
 
 
 def test_reset_parameters_restores_the_start_charge():
-    layer = MagneticFilter(2, 2, 1, charge=0.07, learn_charge=True)
+    layer = MagneticFilter(2, 2, 1, charge=LearnedCharge(start=0.07))
     with torch.no_grad():
         layer.charge_logit.fill_(3.0)
     layer.reset_parameters()
@@ -148,8 +154,8 @@ def test_fixed_charge_builds_its_operator_once_per_graph(monkeypatch):
     g2 = DirectedGraph.from_edges([[0, 1], [1, 2]])
     layer(features(3, 3, torch.float32, False), g2)
     assert len(calls) == 4
-    assert list(layer.buffers()) == []           # operators are never buffers
-    assert len(layer._operators) <= layer._operators.maxsize
+    assert all(b.layout == torch.strided for b in layer.buffers())   # operators are never buffers
+    assert not hasattr(layer, "_operators")      # they are kept with the graph, not the layer
 
 
 def test_ddp_can_wrap_the_layer(tmp_path):
@@ -162,7 +168,7 @@ def test_ddp_can_wrap_the_layer(tmp_path):
     dist.init_process_group("gloo", init_method=f"file://{os.path.join(tmp_path, 'store')}", rank=0, world_size=1)
     try:
         g, _ = reference_graph()
-        layer = MagneticFilter(3, 4, order=2, charge=0.02, learn_charge=True)
+        layer = MagneticFilter(3, 4, order=2, charge=LearnedCharge(start=0.02))
         wrapped = DistributedDataParallel(layer)
         wrapped(features(7, 3, torch.float32, False), g).abs().sum().backward()
         assert layer.charge_logit.grad is not None
@@ -174,10 +180,10 @@ def test_ddp_can_wrap_the_layer(tmp_path):
 
 def test_graph_without_nodes_or_edges_is_nan_free():
     empty = DirectedGraph.from_edges([[], []], num_nodes=0)
-    assert MagneticFilter(2, 2, 2)(torch.zeros(0, 2), empty).shape == (0, 2)
+    assert MagneticFilter(2, 2, 2, charge=0.25)(torch.zeros(0, 2), empty).shape == (0, 2)
     lonely = DirectedGraph.from_edges([[], []], num_nodes=3)
     for learn in (False, True):
-        y = MagneticFilter(2, 2, 2, charge=0.1, learn_charge=learn)(torch.ones(3, 2), lonely)
+        y = MagneticFilter(2, 2, 2, charge=LearnedCharge(start=0.1) if learn else 0.1)(torch.ones(3, 2), lonely)
         assert torch.isfinite(torch.view_as_real(y)).all()
 
 
@@ -190,7 +196,7 @@ def test_charge_outside_the_range(charge):
 
 def test_other_bad_charges():
     with pytest.raises(GraphInputError, match=r"a learned charge must start inside the open interval \(0, 0.5\).*got 0.0"):
-        MagneticFilter(2, 2, 1, charge=0.0, learn_charge=True)
+        MagneticFilter(2, 2, 1, charge=LearnedCharge(start=0.0))
     with pytest.raises(GraphInputError, match=r"got an empty list"):
         MagneticFilter(2, 2, 1, charge=[])
     with pytest.raises(GraphInputError, match=r"charge must hold real numbers in \[0, 0.5\]; got 'a'"):
@@ -202,13 +208,14 @@ def test_other_bad_charges():
 def test_other_bad_arguments():
     g, _ = reference_graph()
     with pytest.raises(GraphInputError, match=r"order must be an integer >= 0; got -2"):
-        MagneticFilter(2, 2, order=-2)
+        MagneticFilter(2, 2, order=-2, charge=0.25)
     with pytest.raises(GraphInputError, match=r"phase must be one of \('difference', 'sign'\); got 'angle'"):
-        MagneticFilter(2, 2, 1, phase="angle")
-    layer = MagneticFilter(3, 2, 1)
+        MagneticFilter(2, 2, 1, charge=0.25, phase="angle")
+    layer = MagneticFilter(3, 2, 1, charge=0.25)
     with pytest.raises(GraphInputError, match=r"x must have num_nodes = 7 rows .*got shape \(8, 3\)"):
         layer(features(8, 3, torch.float32, False), g)
-    with pytest.raises(GraphInputError, match=r"graph must be a DirectedGraph .*got SparseOperator"):
+    with pytest.raises(GraphInputError, match=r"graph must be a DirectedGraph .*got SparseOperator, which lacks "
+                                              r"operator, magnetic_product"):
         layer(features(7, 3, torch.float32, False), normalized_laplacian(g))
     with pytest.raises(GraphInputError, match=r"x has dtype torch.complex128 but the layer's parameters are torch.float32"):
         layer(features(7, 3, torch.float64, True), g)
@@ -225,7 +232,7 @@ def test_property_dense_reference_and_permutation_equivariance(gp, q, learn):
     if learn:
         q = min(max(q, 1e-3), 0.5 - 1e-3)          # a learned charge starts strictly inside
     torch.manual_seed(0)
-    layer = MagneticFilter(2, 2, order=2, charge=q, learn_charge=learn, dtype=torch.float64)
+    layer = MagneticFilter(2, 2, order=2, charge=LearnedCharge(start=q) if learn else q, dtype=torch.float64)
     n = graph.num_nodes
     x = features(n, 2, torch.float64, True)
     y = layer(x, graph)
@@ -235,3 +242,86 @@ def test_property_dense_reference_and_permutation_equivariance(gp, q, learn):
     expected = np_chebyshev_filter(np_normalized_magnetic_laplacian(A, qq), x.numpy(), W, 2.0)
     np.testing.assert_allclose(y.detach().numpy(), expected + layer.bias.detach().numpy(), atol=1e-9)
     torch.testing.assert_close(layer(x[perm], graph.permute(perm)), y[perm])
+
+
+# ---------------------------------------------------------------------- saving, freezing, loading
+def _saved(layer):
+    import io
+
+    buf = io.BytesIO()
+    torch.save(layer.state_dict(), buf)
+    buf.seek(0)
+    return torch.load(buf, weights_only=True)     # plain tensors and numbers: the safe loader reads it
+
+
+def test_fixed_and_banked_charges_travel_in_the_state_dict():
+    bank = MagneticFilter(3, 4, order=1, charge=[0.1, 0.25])
+    state = _saved(bank)
+    assert state["fixed_charge"].tolist() == [0.1, 0.25] and state["fixed_charge"].dtype == torch.float64
+    MagneticFilter(3, 4, order=1, charge=[0.1, 0.25]).load_state_dict(state)
+    with pytest.raises(GraphInputError, match=r"state_dict was saved from a MagneticFilter with charge \[0.1, 0.25\] "
+                                              r"but this layer has charge \[0.1, 0.3\]"):
+        MagneticFilter(3, 4, order=1, charge=[0.1, 0.3]).load_state_dict(state)
+    learned = MagneticFilter(3, 4, order=1, charge=LearnedCharge(start=0.1))
+    with pytest.raises(GraphInputError, match=r"state_dict holds a learned charge \(charge_logit\) but this "
+                                              r"MagneticFilter has a fixed charge; call freeze_charge\(\)"):
+        MagneticFilter(3, 4, order=1, charge=0.1).load_state_dict(_saved(learned))
+    with pytest.raises(GraphInputError, match=r"state_dict holds a fixed charge \[0.1, 0.25\] but this MagneticFilter "
+                                              r"learns its charge"):
+        MagneticFilter(3, 4, order=1, charge=LearnedCharge(start=[0.1, 0.2])).load_state_dict(state)
+    # a float32 copy of the bank (module.float() casts buffers) still loads: compared to float32 precision
+    MagneticFilter(3, 4, order=1, charge=[0.1, 0.25]).load_state_dict({k: v.float() for k, v in state.items()})
+
+
+def test_freeze_charge_keeps_the_output_and_loads_into_a_fixed_layer():
+    g, _ = reference_graph()
+    torch.manual_seed(0)
+    layer = MagneticFilter(3, 4, order=2, charge=LearnedCharge(start=0.05), dtype=torch.float64)
+    with torch.no_grad():
+        layer.charge_logit.fill_(-1.0)                  # q = 0.5 sigmoid(-1), a trained value
+    x = features(7, 3, torch.float64, False)
+    before = layer(x, g)
+    assert layer.freeze_charge() is layer and not layer.learns_charge
+    assert "charge_logit" not in dict(layer.named_parameters())
+    # source: the closed form q = 0.5 / (1 + e) of the logistic function at u = -1
+    assert layer.initial_charge == pytest.approx((0.5 / (1 + np.e),), rel=1e-15)
+    torch.testing.assert_close(layer(x, g), before)
+    fixed = MagneticFilter(3, 4, order=2, charge=layer.initial_charge, dtype=torch.float64)
+    fixed.load_state_dict(_saved(layer))
+    torch.testing.assert_close(fixed(x, g), before)
+
+
+def test_repr_shows_the_current_learned_charge():
+    layer = MagneticFilter(2, 2, order=1, charge=LearnedCharge(start=0.05))
+    assert "charge=LearnedCharge(start=0.05), charge_now=0.05" in repr(layer)
+    with torch.no_grad():
+        layer.charge_logit.fill_(0.0)                   # q = 0.5 sigmoid(0) = 0.25
+    assert "charge_now=0.25" in repr(layer)
+
+
+def test_charge_is_keyword_only_and_required():
+    with pytest.raises(TypeError):
+        MagneticFilter(2, 2, 1, 0.25)
+    with pytest.raises(TypeError, match="charge"):
+        MagneticFilter(2, 2, 1)
+    with pytest.raises(GraphInputError, match=r"a learned charge must start inside the open interval"):
+        LearnedCharge(start=0.5)
+    assert LearnedCharge(start=[0.1, 0.2]) == LearnedCharge(start=[0.1, 0.2])
+
+
+def test_layers_keep_no_graph_alive():
+    # a long-running process that sees many graphs must not grow: layers hold no graph
+    import gc
+    import weakref
+
+    from phasorgraph.nn import BandMix, RenormalizedFilter
+
+    layers = [MagneticFilter(3, 2, order=1, charge=0.2), MagneticFilter(3, 2, order=1, charge=LearnedCharge(start=0.1)),
+              RenormalizedFilter(3, 2), BandMix(3, 2, (1,), 1)]
+    for layer in layers:
+        g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+        layer(torch.ones(3, 3), g)
+        dead = weakref.ref(g)
+        del g
+        gc.collect()
+        assert dead() is None, type(layer).__name__

@@ -53,7 +53,7 @@ def test_largest_eigenvalue_dense_path_matches_numpy(g, q):
     for op in _hermitian_ops(g, q):
         expected = np.linalg.eigvalsh(op.to_dense().numpy())[-1]
         assert abs(largest_eigenvalue(op) - expected) < 1e-10
-        assert op.lmax == largest_eigenvalue(op)  # cached
+        assert op.max_eigenvalue == largest_eigenvalue(op)  # cached
 
 
 @pytest.mark.parametrize("seed", [0, 1])
@@ -81,7 +81,7 @@ def test_largest_eigenvalue_even_cycle_regression():
 def test_largest_eigenvalue_cache_and_refresh():
     op = normalized_laplacian(_random_graph(10, 20, 0), dtype=F64)
     first = largest_eigenvalue(op)
-    op.lmax = 123.0
+    op.max_eigenvalue = 123.0
     assert largest_eigenvalue(op) == 123.0
     assert abs(largest_eigenvalue(op, refresh=True) - first) < 1e-12
 

@@ -85,8 +85,8 @@ class Symmetrized(nn.Module):
 
     def __init__(self, fin, classes):
         super().__init__()
-        self.conv1 = pg.nn.ChebyshevFilter(fin, HIDDEN, ORDER, lmax=2.0)
-        self.conv2 = pg.nn.ChebyshevFilter(HIDDEN, HIDDEN, ORDER, lmax=2.0)
+        self.conv1 = pg.nn.ChebyshevFilter(fin, HIDDEN, ORDER, max_eigenvalue=2.0)
+        self.conv2 = pg.nn.ChebyshevFilter(HIDDEN, HIDDEN, ORDER, max_eigenvalue=2.0)
         self.head = nn.Linear(HIDDEN, classes)
         self._op = None
 
@@ -102,9 +102,9 @@ class Symmetrized(nn.Module):
 class Magnetic(nn.Module):
     """Two MagneticFilters (learned charge or a bank), modReLU, then real and imaginary parts."""
 
-    def __init__(self, fin, classes, *, charge, learn_charge, phase):
+    def __init__(self, fin, classes, *, charge, phase):
         super().__init__()
-        kw = dict(charge=charge, learn_charge=learn_charge, phase=phase)
+        kw = dict(charge=charge, phase=phase)
         self.conv1 = pg.nn.MagneticFilter(fin, HIDDEN, ORDER, **kw)
         self.act1 = pg.nn.ModReLU(HIDDEN)
         self.conv2 = pg.nn.MagneticFilter(HIDDEN, HIDDEN, ORDER, **kw)
@@ -165,9 +165,9 @@ MODELS = {
     "Chebyshev, symmetrized": (("ChebyshevFilter",), lambda f, c, p: Symmetrized(f, c), "-"),
     "BandMix, symmetrized": (("BandMix",), lambda f, c, p: Bands(f, c), "-"),
     "Magnetic, learned q": (("MagneticFilter", "ModReLU", "ComplexToReal"),
-                            lambda f, c, p: Magnetic(f, c, charge=CHARGE_START, learn_charge=True, phase=p), "learned"),
+                            lambda f, c, p: Magnetic(f, c, charge=pg.nn.LearnedCharge(start=CHARGE_START), phase=p), "learned"),
     "Magnetic, bank of q": (("MagneticFilter", "ModReLU", "ComplexToReal"),
-                            lambda f, c, p: Magnetic(f, c, charge=BANK, learn_charge=False, phase=p),
+                            lambda f, c, p: Magnetic(f, c, charge=BANK, phase=p),
                             "{" + ", ".join(str(q) for q in BANK) + "}"),
     "Magnetic scattering": (("DiffusionScattering",), lambda f, c, p: MagneticScattering(f, c, p),
                             f"{SCATTERING_CHARGE} fixed"),
@@ -214,7 +214,7 @@ def main(argv=None) -> None:
             trace = []
 
             def record(epoch, model=model, trace=trace):
-                if hasattr(model, "charges") and model.conv1.learn_charge:
+                if hasattr(model, "charges") and model.conv1.learns_charge:
                     trace.append((epoch, [float(q) for q in torch.cat(model.charges())]))
 
             record(0)

@@ -51,9 +51,9 @@ ORDER = 2
 class LaneModel(nn.Module):
     """Magnetic node encoder and an MLP pair scorer."""
 
-    def __init__(self, fin, *, charge, learn_charge):
+    def __init__(self, fin, *, charge):
         super().__init__()
-        kw = dict(charge=charge, learn_charge=learn_charge, phase="sign")
+        kw = dict(charge=charge, phase="sign")
         self.conv1 = pg.nn.MagneticFilter(fin, HIDDEN, ORDER, **kw)
         self.act1 = pg.nn.ModReLU(HIDDEN)
         self.conv2 = pg.nn.MagneticFilter(HIDDEN, HIDDEN, ORDER, **kw)
@@ -123,8 +123,8 @@ def main(argv=None) -> None:
     print("network:", net.describe())
     x = torch.cat([net.features, torch.ones(net.num_depots, 1)], dim=1)
 
-    variants = {"charge 0 (no direction)": dict(charge=0.0, learn_charge=False),
-                "charge learned from 0.05": dict(charge=0.05, learn_charge=True)}
+    variants = {"charge 0 (no direction)": dict(charge=0.0),
+                "charge learned from 0.05": dict(charge=pg.nn.LearnedCharge(start=0.05))}
     rows = []
     for task in ("direction", "existence"):
         for name, kw in variants.items():
@@ -143,7 +143,7 @@ def main(argv=None) -> None:
                 print(f"    run {run + 1}: test AUC {r['test_auc']:.3f}, accuracy {r['test_acc']:.3f} "
                       f"(best val epoch {r['epoch']}, {r['seconds']:.1f} s)", flush=True)
                 res.append(r)
-            q = "0 fixed" if not kw["learn_charge"] else " / ".join(
+            q = "0 fixed" if not isinstance(kw["charge"], pg.nn.LearnedCharge) else " / ".join(
                 f"{sum(r['charges'][i] for r in res) / len(res):.3f}" for i in range(2))
             rows.append((task, name, C.mean_std([r["test_auc"] for r in res]),
                          C.mean_std([r["test_acc"] for r in res]), q, C.count_parameters(model),

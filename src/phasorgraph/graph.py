@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numbers
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 import scipy.sparse as sp
@@ -89,6 +89,14 @@ def _same_names(a, b) -> bool:
     return a.shape == b.shape and bool(np.all(a == b))
 
 
+def _hashable(value: Any) -> bool:
+    try:
+        hash(value)
+    except TypeError:
+        return False
+    return True
+
+
 class DirectedGraph:
     r"""A directed weighted graph on nodes ``0 .. num_nodes - 1``, stored as canonical edges.
 
@@ -128,7 +136,7 @@ class DirectedGraph:
         (3, 2, [1.0, 5.0])
     """
 
-    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache", "_node_names")
+    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache", "_node_names", "_hash", "__weakref__")
 
     def __init__(self, source: Any, target: Any, weight: Any = None, num_nodes: int | None = None, *,
                  node_names: Any = None):
@@ -164,6 +172,7 @@ class DirectedGraph:
         self._node_names = _check_node_names(node_names, num_nodes)
         self._source, self._target, self._weight = self._canonical(src, dst, w, num_nodes)
         self._cache: dict = {}
+        self._hash: int | None = None
 
     @staticmethod
     def _canonical(src, dst, w, n):
@@ -251,7 +260,12 @@ class DirectedGraph:
             and _same_names(self._node_names, other._node_names)
         )
 
-    __hash__ = object.__hash__
+    def __hash__(self) -> int:
+        # by value, like __eq__: equal graphs hash alike (computed once; the graph is immutable)
+        if self._hash is None:
+            self._hash = hash((self._num_nodes, self._source.numpy().tobytes(), self._target.numpy().tobytes(),
+                               self._weight.numpy().tobytes()))
+        return self._hash
 
     def __getstate__(self):
         return {"source": self._source, "target": self._target, "weight": self._weight, "num_nodes": self._num_nodes,
@@ -264,6 +278,88 @@ class DirectedGraph:
         if self._node_names is not None:
             self._node_names.flags.writeable = False
         self._cache = {}
+        self._hash = None
+
+    # ------------------------------------------------------------------ the graph-like protocol
+    # What layers ask of the graph they are given: ``num_nodes``, ``num_rows``, ``operator`` and
+    # ``magnetic_product``. Layers use nothing else, so another object that answers these (a
+    # shard of a distributed graph, say) can stand in for a DirectedGraph.
+    @property
+    def num_rows(self) -> int:
+        """Rows of the node features a layer takes with this graph: ``num_nodes``.
+
+        (A shard of a distributed graph answers with the rows it owns.)
+        """
+        return self._num_nodes
+
+    def operator(self, builder: Callable[..., Any], *, device: Any = None, **options: Any) -> Any:
+        """``builder(self, **options)``, moved to ``device``; built once and kept with the graph.
+
+        The operator is built on the first call for each (builder, options, device) and then
+        returned as is (operators are never changed after they are built, so sharing one is
+        safe). The cache lives on the graph: it goes when the graph goes, and
+        :meth:`clear_cache` empties it. Pass a module-level function as ``builder`` (a new
+        lambda each call would never hit the cache).
+
+        Args:
+            builder: a function ``graph -> SparseOperator``, e.g.
+                :func:`phasorgraph.operators.magnetic_laplacian`.
+            device: where the operator should live (default: where the builder puts it, the CPU).
+            **options: keyword arguments for ``builder``; hashable values (numbers, strings,
+                dtypes, tuples).
+
+        Example:
+            >>> import torch
+            >>> from phasorgraph.operators import normalized_laplacian
+            >>> g = DirectedGraph.from_edges([[0, 1], [1, 2]])
+            >>> op = g.operator(normalized_laplacian, dtype=torch.float64)
+            >>> op is g.operator(normalized_laplacian, dtype=torch.float64), op.shape
+            (True, torch.Size([3, 3]))
+        """
+        if not callable(builder):
+            raise GraphInputError(f"builder must be a function graph -> operator; got {type(builder).__name__}")
+        where = None if device is None else str(torch.device(device))
+        try:
+            key = ("operator", builder, tuple(sorted(options.items())), where)
+            hit = self._cache.get(key)
+        except TypeError:
+            bad = next(k for k, v in options.items() if not _hashable(v))
+            raise GraphInputError(
+                f"option {bad!r} of graph.operator must be hashable (a number, string, dtype or tuple); "
+                f"got {type(options[bad]).__name__}"
+            ) from None
+        if hit is None:
+            hit = builder(self, **options)
+            if where is not None and str(hit.device) != where:
+                hit = hit.to(device=where)
+            self._cache[key] = hit
+        return hit
+
+    def magnetic_product(self, charge: torch.Tensor, *, phase: str = "difference") -> Callable[[torch.Tensor], torch.Tensor]:
+        r"""The map :math:`x \mapsto L_{norm}(q)\, x` at a tensor charge, differentiable in the charge.
+
+        The same as :func:`phasorgraph.operators.magnetic_product` (see there); this is the
+        form layers call, so that a graph-like object can supply its own.
+
+        Example:
+            >>> import torch
+            >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+            >>> apply = g.magnetic_product(torch.tensor(0.1))
+            >>> apply(torch.ones(3, 1)).dtype
+            torch.complex64
+        """
+        from .operators import magnetic_product  # operators builds on this module
+
+        return magnetic_product(self, charge, phase=phase)
+
+    def clear_cache(self) -> None:
+        """Drop every operator and derived array kept with this graph (rebuilt on next use).
+
+        Example:
+            >>> g = DirectedGraph.from_edges([[0], [1]])
+            >>> g.clear_cache()
+        """
+        self._cache.clear()
 
     # ------------------------------------------------------------------ constructors
     @classmethod

@@ -68,7 +68,7 @@ class SparseOperator:
             :class:`SparseOperator`. Powers can then run on ``base`` with the Hermitian kernel.
 
     Attributes:
-        lmax (float or None): largest eigenvalue, filled in once by
+        max_eigenvalue (float or None): largest eigenvalue, filled in once by
             :func:`phasorgraph.spectral.largest_eigenvalue` and kept here.
 
     Example:
@@ -81,7 +81,7 @@ class SparseOperator:
 
     def __init__(self, matrix: torch.Tensor, *, hermitian: bool, spectrum: Optional[tuple] = None,
                  kind: str = "operator", low_rank: Optional[tuple] = None,
-                 similar: Optional[tuple] = None, lmax: Optional[float] = None):
+                 similar: Optional[tuple] = None, max_eigenvalue: Optional[float] = None):
         if not isinstance(matrix, torch.Tensor) or matrix.layout != torch.sparse_csr:
             raise GraphInputError(
                 f"matrix must be a torch sparse CSR tensor; got {getattr(matrix, 'layout', type(matrix).__name__)}"
@@ -102,7 +102,7 @@ class SparseOperator:
         self.kind = kind
         self.low_rank = low_rank
         self.similar = similar
-        self.lmax = lmax
+        self.max_eigenvalue = max_eigenvalue
         self._adjoint: Optional[SparseOperator] = None
 
     # ------------------------------------------------------------------ facts
@@ -112,6 +112,12 @@ class SparseOperator:
 
     @property
     def num_rows(self) -> int:
+        """Rows of the features this operator multiplies (all of them for a whole operator)."""
+        return int(self.matrix.shape[0])
+
+    @property
+    def num_nodes(self) -> int:
+        """Nodes of the whole graph: ``num_rows`` here (an operator on a shard holds fewer rows)."""
         return int(self.matrix.shape[0])
 
     @property
@@ -176,7 +182,7 @@ class SparseOperator:
             low_rank = None if self.low_rank is None else (self.low_rank[1], self.low_rank[0])
             spectrum = self.spectrum
             adj = SparseOperator(csr_matrix(crow, cols, vals, (n, n)), hermitian=False, spectrum=spectrum,
-                                 kind=self.kind + "^H", low_rank=low_rank, lmax=self.lmax)
+                                 kind=self.kind + "^H", low_rank=low_rank, max_eigenvalue=self.max_eigenvalue)
             adj._adjoint = self
             self._adjoint = adj
         return self._adjoint
@@ -212,7 +218,7 @@ class SparseOperator:
             base, scale = self.similar
             similar = (base.to(dtype, device), scale.to(device=device, dtype=_real_precision(dtype)))
         return SparseOperator(matrix, hermitian=self.hermitian, spectrum=self.spectrum, kind=self.kind,
-                              low_rank=low_rank, similar=similar, lmax=self.lmax)
+                              low_rank=low_rank, similar=similar, max_eigenvalue=self.max_eigenvalue)
 
 
 # ---------------------------------------------------------------------- the raw product

@@ -80,12 +80,12 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
     Otherwise, or if Lanczos does not converge, power iteration estimates the largest
     eigenvalue (shifted by the lower end of a known ``spectrum`` when Hermitian, so a large
     negative eigenvalue cannot win) or, for a general operator, the spectral radius.
-    The value is stored in ``op.lmax`` and returned from there on later calls.
+    The value is stored in ``op.max_eigenvalue`` and returned from there on later calls.
 
     Args:
         op: a SparseOperator.
         tol: Lanczos tolerance.
-        refresh: recompute even if ``op.lmax`` is set.
+        refresh: recompute even if ``op.max_eigenvalue`` is set.
 
     Example:
         >>> from phasorgraph import DirectedGraph, normalized_laplacian
@@ -94,11 +94,11 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
         2.0
     """
     op = _check_operator(op)
-    if op.lmax is not None and not refresh:
-        return op.lmax
+    if op.max_eigenvalue is not None and not refresh:
+        return op.max_eigenvalue
     n = op.num_rows
     if n == 0:
-        op.lmax = 0.0
+        op.max_eigenvalue = 0.0
         return 0.0
     value = None
     if not op.hermitian and op.similar is not None:
@@ -119,7 +119,7 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
     if value is None:
         shift = op.spectrum[0] if (op.hermitian and op.spectrum is not None) else 0.0
         value = _power_iteration(op, shift=shift)
-    op.lmax = value
+    op.max_eigenvalue = value
     return value
 
 

@@ -11,7 +11,7 @@ from torch import nn
 
 from .. import operators
 from ..errors import GraphInputError
-from ..graph import DirectedGraph
+from .filters import _check_graph_like
 from .wavelets import _check_node_features, _check_scales, _diffusion_powers, _dyadic_bands
 
 __all__ = ["BandMix"]
@@ -51,9 +51,9 @@ class BandMix(nn.Module):
     paper's idea of attention over channels; its exact form here is our own choice, stated
     so it can be checked.)
 
-    ``forward(x, graph)`` builds :math:`\tilde A` and T with :mod:`phasorgraph.operators` and
-    caches them for the last graph seen (held as a plain attribute, not a buffer: nothing
-    sparse enters the state_dict or a pickle). Cost: :math:`\max k_c + 2^J` sparse products of
+    ``forward(x, graph)`` builds :math:`\tilde A` and T with :mod:`phasorgraph.operators` through
+    ``graph.operator``, which keeps them with the graph (not a buffer: nothing sparse enters the
+    state_dict or a pickle). Cost: :math:`\max k_c + 2^J` sparse products of
     width F.
 
     Args:
@@ -107,7 +107,6 @@ class BandMix(nn.Module):
         else:
             self.register_parameter("bias", None)
         self.attention = nn.Parameter(torch.empty(2, self.out_channels, **factory))
-        self._operators = None  # (graph, dtype, device, renormalized adjacency, diffusion)
         self.last_attention = None
         self.reset_parameters()
 
@@ -121,22 +120,16 @@ class BandMix(nn.Module):
             bound = 1.0 / math.sqrt(self.out_channels)
             nn.init.uniform_(self.attention, -bound, bound)
 
-    def _graph_operators(self, graph: DirectedGraph, dtype: torch.dtype, device: torch.device):
-        cached = self._operators
-        if cached is not None and cached[0] is graph and cached[1] == dtype and cached[2] == device:
-            return cached[3], cached[4]
-        adj = operators.renormalized_adjacency(graph, dtype=dtype)
-        diff = operators.diffusion(graph, dtype=dtype)
-        if device != adj.device:
-            adj, diff = adj.to(device=device), diff.to(device=device)
-        self._operators = (graph, dtype, device, adj, diff)
+    def _graph_operators(self, graph, dtype: torch.dtype, device: torch.device):
+        # kept with the graph (graph.operator): switching graphs rebuilds nothing
+        adj = graph.operator(operators.renormalized_adjacency, dtype=dtype, device=device)
+        diff = graph.operator(operators.diffusion, dtype=dtype, device=device)
         return adj, diff
 
-    def channels(self, x: torch.Tensor, graph: DirectedGraph) -> torch.Tensor:
+    def channels(self, x: torch.Tensor, graph) -> torch.Tensor:
         """The stacked input channels (N, C, F) before the maps: low-pass first, then band-pass."""
-        if not isinstance(graph, DirectedGraph):
-            raise GraphInputError(f"graph must be a DirectedGraph; got {type(graph).__name__}")
-        x = _check_node_features(x, graph.num_nodes, in_channels=self.in_channels)
+        graph = _check_graph_like(graph, "BandMix")
+        x = _check_node_features(x, graph.num_rows, in_channels=self.in_channels)
         if x.is_complex() or x.dtype not in (torch.float32, torch.float64):
             raise GraphInputError(f"x must be real float32 or float64 for BandMix; got dtype {x.dtype}")
         adj, diff = self._graph_operators(graph, x.dtype, x.device)
@@ -144,7 +137,7 @@ class BandMix(nn.Module):
         band = _dyadic_bands(diff, None, x, self.scales)[:, :-1].abs()
         return torch.cat([low, band], dim=1)
 
-    def forward(self, x: torch.Tensor, graph: DirectedGraph) -> torch.Tensor:
+    def forward(self, x: torch.Tensor, graph) -> torch.Tensor:
         z = self.channels(x, graph)  # (N, C, F)
         h = torch.einsum("ncf,cof->nco", z, self.weight)
         if self.bias is not None:
@@ -156,7 +149,6 @@ class BandMix(nn.Module):
 
     def __getstate__(self):
         state = dict(self.__dict__)
-        state["_operators"] = None
         state["last_attention"] = None
         return state
 

@@ -12,8 +12,8 @@ DistributedDataParallel treat them like any other float parameter; ``torch.view_
 turns them into the complex weights.
 
 No layer registers a sparse tensor as a buffer or parameter: operators built from a graph are
-kept in a small per-layer cache (a plain attribute, dropped on pickling), Fourier bases in a
-module-level weak cache keyed by the operator.
+kept with the graph (``graph.operator(builder, ...)``), Fourier bases in a module-level weak
+cache keyed by the operator.
 """
 
 from __future__ import annotations
@@ -21,7 +21,6 @@ from __future__ import annotations
 import math
 import numbers
 import weakref
-from collections import OrderedDict
 from typing import Callable, Optional, Sequence
 
 import torch
@@ -29,7 +28,6 @@ from torch import nn
 from torch.autograd.function import once_differentiable
 
 from ..errors import GraphInputError
-from ..graph import DirectedGraph
 from ..operators import renormalized_adjacency
 from ..sparse import SparseOperator
 from ..spectral import DENSE_NODE_LIMIT, fourier_basis, largest_eigenvalue
@@ -63,13 +61,29 @@ def _real_factory_dtype(dtype) -> Optional[torch.dtype]:
     return _REAL_OF[dtype]
 
 
-def _check_lmax(lmax, name: str = "lmax") -> Optional[float]:
-    if lmax is None:
+def _check_max_eigenvalue(value, name: str = "max_eigenvalue") -> Optional[float]:
+    if value is None:
         return None
-    if isinstance(lmax, bool) or not isinstance(lmax, numbers.Real) or not math.isfinite(float(lmax)) \
-            or float(lmax) <= 0:
-        raise GraphInputError(f"{name} must be a finite number > 0 or None (computed from op); got {lmax!r}")
-    return float(lmax)
+    if isinstance(value, bool) or not isinstance(value, numbers.Real) or not math.isfinite(float(value)) \
+            or float(value) <= 0:
+        raise GraphInputError(f"{name} must be a finite number > 0 or None (computed from op); got {value!r}")
+    return float(value)
+
+
+def _check_graph_like(graph, layer: str, needs: tuple = ("num_nodes", "num_rows", "operator")):
+    """A DirectedGraph or any object answering the graph-like protocol (no isinstance on types).
+
+    The protocol: ``num_nodes`` (nodes of the whole graph), ``num_rows`` (rows of x held here),
+    ``operator(builder, device=..., **options)`` and, for a learned charge,
+    ``magnetic_product(charge, phase=...)``.
+    """
+    missing = [name for name in needs if not hasattr(graph, name)]
+    if missing:
+        raise GraphInputError(
+            f"graph must be a DirectedGraph (or a graph-like object with {', '.join(needs)}, such as a shard "
+            f"of a distributed graph) for {layer}; got {type(graph).__name__}, which lacks {', '.join(missing)}"
+        )
+    return graph
 
 
 def _check_features(x, num_nodes: int, in_channels: int, precision: torch.dtype, device) -> torch.Tensor:
@@ -240,47 +254,6 @@ def _chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tens
     return out
 
 
-class _OperatorCache:
-    """A small LRU of operators keyed by graph identity (graphs cannot be weakly referenced).
-
-    Each entry holds its graph, so an id cannot be reused while the entry lives; at most
-    ``maxsize`` entries are kept (oldest dropped first). Plain Python state: never a buffer or
-    parameter, so DistributedDataParallel and ``state_dict`` never see a sparse tensor.
-    """
-
-    def __init__(self, maxsize: int = 8):
-        self.maxsize = maxsize
-        self._items: OrderedDict = OrderedDict()
-
-    def get(self, graph: DirectedGraph, key: tuple, build: Callable[[], SparseOperator]) -> SparseOperator:
-        full = (id(graph),) + tuple(key)
-        hit = self._items.get(full)
-        if hit is not None and hit[0] is graph:
-            self._items.move_to_end(full)
-            return hit[1]
-        op = build()
-        self._items[full] = (graph, op)
-        self._items.move_to_end(full)
-        while len(self._items) > self.maxsize:
-            self._items.popitem(last=False)
-        return op
-
-    def clear(self) -> None:
-        self._items.clear()
-
-    def __len__(self) -> int:
-        return len(self._items)
-
-
-class _CachedOperators:
-    """Mixin: a per-layer operator cache that pickling and deepcopy drop (it is rebuilt lazily)."""
-
-    def __getstate__(self):
-        state = dict(self.__dict__)
-        state["_operators"] = _OperatorCache()
-        return state
-
-
 # ---------------------------------------------------------------------- Chebyshev
 
 def _make_parameters(module: nn.Module, weight_shape: tuple, bias: bool, factory: dict,
@@ -316,7 +289,7 @@ def _reset_chebyshev_parameters(module: nn.Module) -> None:
     _reset_uniform(module, 1.0 / math.sqrt((module.order + 1) * module.in_channels), module.complex_weights)
 
 
-class ChebyshevFilter(_CachedOperators, nn.Module):
+class ChebyshevFilter(nn.Module):
     r"""Chebyshev polynomial filter :math:`Y = \sum_{k=0}^{K} T_k(\tilde L)\, X W_k + b`.
 
     :math:`\tilde L = 2 L / \lambda_{max} - I` maps the spectrum :math:`[0, \lambda_{max}]` of a
@@ -325,9 +298,10 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
     (Defferrard et al. 2016; recursion as in Hammond et al. 2011). K sparse products per
     forward, K more in backward (the Hermitian kernel), memory O(nnz + K N C_in).
 
-    :math:`\lambda_{max}` comes from, in this order: the ``lmax`` argument of ``forward``, the
-    ``lmax`` given to the constructor, or :func:`phasorgraph.spectral.largest_eigenvalue` (computed
-    once and cached on the operator as ``op.lmax``). Pass ``lmax=2`` for normalized Laplacians
+    :math:`\lambda_{max}` comes from, in this order: the ``max_eigenvalue`` argument of ``forward``,
+    the ``max_eigenvalue`` given to the constructor, or
+    :func:`phasorgraph.spectral.largest_eigenvalue` (computed once per operator and remembered
+    there). Pass ``max_eigenvalue=2`` for normalized Laplacians
     (their spectrum lies in [0, 2]) to skip the eigenvalue computation. An operator whose largest
     eigenvalue is 0 (the Laplacian of a graph without edges) is taken with
     :math:`\lambda_{max} = 1`, i.e. :math:`\tilde L = -I`.
@@ -339,7 +313,7 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
         bias: learn an additive bias (default True).
         complex_weights: fully complex W_k and bias (default False: real weights, one W_k for
             the real and imaginary parts of complex features; a real bias adds to the real part).
-        lmax: optional fixed :math:`\lambda_{max} > 0` (e.g. 2.0 for normalized operators).
+        max_eigenvalue: optional fixed :math:`\lambda_{max} > 0` (e.g. 2.0 for normalized operators).
         device, dtype: factory kwargs for the parameters (dtype float32 or float64; complex
             weights use the matching complex precision).
 
@@ -363,21 +337,21 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
         >>> import torch
         >>> from phasorgraph import DirectedGraph, normalized_laplacian
         >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
-        >>> layer = ChebyshevFilter(4, 8, order=2, lmax=2.0)
+        >>> layer = ChebyshevFilter(4, 8, order=2, max_eigenvalue=2.0)
         >>> layer(torch.randn(3, 4), normalized_laplacian(g)).shape
         torch.Size([3, 8])
     """
 
     def __init__(self, in_channels: int, out_channels: int, order: int, bias: bool = True,
-                 complex_weights: bool = False, *, lmax: Optional[float] = None, device=None, dtype=None):
+                 complex_weights: bool = False, *, max_eigenvalue: Optional[float] = None, device=None,
+                 dtype=None):
         super().__init__()
         self.in_channels = _check_count("in_channels", in_channels)
         self.out_channels = _check_count("out_channels", out_channels)
         self.order = _check_count("order", order, minimum=0)
         self.complex_weights = bool(complex_weights)
-        self.lmax = _check_lmax(lmax)
+        self.max_eigenvalue = _check_max_eigenvalue(max_eigenvalue)
         _make_chebyshev_parameters(self, bias, {"device": device, "dtype": _real_factory_dtype(dtype)})
-        self._operators = _OperatorCache()
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
@@ -390,8 +364,8 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
             s += ", bias=False"
         if self.complex_weights:
             s += ", complex_weights=True"
-        if self.lmax is not None:
-            s += f", lmax={self.lmax}"
+        if self.max_eigenvalue is not None:
+            s += f", max_eigenvalue={self.max_eigenvalue}"
         return s
 
     # the pieces MagneticFilter reuses -----------------------------------------------
@@ -406,29 +380,29 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
     def _precision(self) -> torch.dtype:
         return self.weight.dtype
 
-    def forward(self, x: torch.Tensor, op: SparseOperator, lmax: Optional[float] = None) -> torch.Tensor:
-        """Filter ``x`` (N, C_in) with the operator ``op``; ``lmax`` overrides the stored value."""
+    def forward(self, x: torch.Tensor, op: SparseOperator, max_eigenvalue: Optional[float] = None) -> torch.Tensor:
+        """Filter ``x`` (N, C_in) with the operator ``op``; ``max_eigenvalue`` overrides the stored value."""
         precision = self._precision()
         op = _check_operator(op, precision, self.weight.device, layer="ChebyshevFilter")
         if not op.hermitian:
             raise GraphInputError(
-                f"op must be real symmetric or Hermitian for ChebyshevFilter (its lmax and cheap "
+                f"op must be real symmetric or Hermitian for ChebyshevFilter (its max_eigenvalue and cheap "
                 f"backward rely on it); got kind {op.kind!r} with hermitian=False"
             )
         x = _check_features(x, op.num_rows, self.in_channels, precision, self.weight.device)
-        lam = _check_lmax(lmax, "lmax (forward)")
+        lam = _check_max_eigenvalue(max_eigenvalue, "max_eigenvalue (forward)")
         if lam is None:
-            lam = self.lmax
+            lam = self.max_eigenvalue
         if lam is None:
             lam = largest_eigenvalue(op)
             if lam < -1e-12:
                 raise GraphInputError(
                     f"op has largest eigenvalue {lam:.3g} < 0; ChebyshevFilter expects a positive "
-                    f"semidefinite operator (a Laplacian) or an explicit lmax > 0"
+                    f"semidefinite operator (a Laplacian) or an explicit max_eigenvalue > 0"
                 )
             if lam <= 1e-12:
-                lam = 1.0  # the zero operator: L~ = -I whatever lmax > 0 is used
-        if op.num_rows == 0:
+                lam = 1.0  # the zero operator: L~ = -I whatever max_eigenvalue > 0 is used
+        if op.num_nodes == 0:
             return _empty_output(x, self.out_channels, _output_dtype(x, op, self._weights()), self.parameters())
         w = self._weights()
         if w.is_complex() and not x.is_complex():
@@ -438,12 +412,12 @@ class ChebyshevFilter(_CachedOperators, nn.Module):
 
 
 # ---------------------------------------------------------------------- renormalized
-class RenormalizedFilter(_CachedOperators, nn.Module):
+class RenormalizedFilter(nn.Module):
     r"""One renormalized-adjacency product and a linear map, :math:`Y = \hat A X W + b`.
 
     :math:`\hat A = \tilde D^{-1/2} (A_s + I) \tilde D^{-1/2}` (Kipf & Welling 2017), from
     :func:`phasorgraph.operators.renormalized_adjacency`. Given a DirectedGraph, the operator is
-    built once and cached per graph (a few graphs at a time); given a SparseOperator it is used
+    built once per graph and kept with it (``graph.operator``); given a SparseOperator it is used
     as is. The operator must be real: for complex (magnetic) operators use
     :class:`ChebyshevFilter` or :class:`~phasorgraph.nn.MagneticFilter`. The product runs on the
     narrower side (``X W`` first when C_out < C_in).
@@ -479,7 +453,6 @@ class RenormalizedFilter(_CachedOperators, nn.Module):
         self.out_channels = _check_count("out_channels", out_channels)
         factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
         _make_parameters(self, (self.in_channels, self.out_channels), bias, factory)
-        self._operators = _OperatorCache()
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
@@ -489,30 +462,29 @@ class RenormalizedFilter(_CachedOperators, nn.Module):
     def extra_repr(self) -> str:
         return f"{self.in_channels}, {self.out_channels}" + (", bias=False" if self.bias is None else "")
 
-    def _operator(self, op_or_graph) -> SparseOperator:
+    def _operator(self, op_or_graph):
         precision, device = self.weight.dtype, self.weight.device
-        if isinstance(op_or_graph, DirectedGraph):
-            graph = op_or_graph
-            return self._operators.get(
-                graph, ("renormalized_adjacency", precision, str(device)),
-                lambda: renormalized_adjacency(graph, dtype=precision).to(device=device))
-        if isinstance(op_or_graph, SparseOperator) and op_or_graph.is_complex:
+        if isinstance(op_or_graph, SparseOperator):
+            if op_or_graph.is_complex:
+                raise GraphInputError(
+                    f"op must be real for RenormalizedFilter (the renormalized adjacency); got "
+                    f"{op_or_graph.dtype} (kind {op_or_graph.kind!r}); use ChebyshevFilter or "
+                    f"MagneticFilter for complex operators"
+                )
+            return _check_operator(op_or_graph, precision, device, layer="RenormalizedFilter")
+        if not hasattr(op_or_graph, "operator"):
             raise GraphInputError(
-                f"op must be real for RenormalizedFilter (the renormalized adjacency); got "
-                f"{op_or_graph.dtype} (kind {op_or_graph.kind!r}); use ChebyshevFilter or "
-                f"MagneticFilter for complex operators"
+                f"op_or_graph must be a SparseOperator or a DirectedGraph (or another graph-like object); got "
+                f"{type(op_or_graph).__name__}"
             )
-        if not isinstance(op_or_graph, SparseOperator):
-            raise GraphInputError(
-                f"op_or_graph must be a SparseOperator or a DirectedGraph; got {type(op_or_graph).__name__}"
-            )
-        return _check_operator(op_or_graph, precision, device, layer="RenormalizedFilter")
+        graph = _check_graph_like(op_or_graph, "RenormalizedFilter")
+        return graph.operator(renormalized_adjacency, dtype=precision, device=device)
 
     def forward(self, x: torch.Tensor, op_or_graph) -> torch.Tensor:
         """``op @ x @ weight + bias``; ``op_or_graph`` a real SparseOperator or a DirectedGraph."""
         op = self._operator(op_or_graph)
         x = _check_features(x, op.num_rows, self.in_channels, self.weight.dtype, self.weight.device)
-        if op.num_rows == 0:
+        if op.num_nodes == 0:
             return _empty_output(x, self.out_channels, _output_dtype(x, self.weight), self.parameters())
         if self.out_channels < self.in_channels:
             out = op @ _mix(x, self.weight)

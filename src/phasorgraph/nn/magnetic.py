@@ -10,15 +10,13 @@ import torch
 from torch import nn
 
 from ..errors import GraphInputError
-from ..graph import DirectedGraph
-from ..operators import _check_phase, magnetic_laplacian, magnetic_product
+from ..operators import _check_phase, magnetic_laplacian
 from .filters import (
     _COMPLEX_OF,
-    _CachedOperators,
     _add_bias,
-    _OperatorCache,
     _check_count,
     _check_features,
+    _check_graph_like,
     _chebyshev_sum,
     _complex_view,
     _empty_output,
@@ -27,12 +25,15 @@ from .filters import (
     _reset_chebyshev_parameters,
 )
 
-__all__ = ["MagneticFilter"]
+__all__ = ["MagneticFilter", "LearnedCharge"]
 
 
 
-def _check_charges(charge, learn: bool) -> tuple:
-    """A tuple of floats in [0, 0.5] (open (0, 0.5) when learned) and whether one was given."""
+_CHARGE_RULE = "a real number in [0, 0.5], a non-empty list of them, or LearnedCharge(start=...)"
+
+
+def _charge_values(charge, learned: bool) -> tuple:
+    """A tuple of floats in [0, 0.5] (open (0, 0.5) when learned) and whether one number was given."""
     if isinstance(charge, torch.Tensor):
         charge = charge.detach().cpu().tolist()
     scalar = isinstance(charge, numbers.Real) and not isinstance(charge, bool)
@@ -40,11 +41,9 @@ def _check_charges(charge, learn: bool) -> tuple:
     try:
         values = list(values)
     except TypeError:
-        raise GraphInputError(
-            f"charge must be a real number in [0, 0.5] or a non-empty list of them; got {type(charge).__name__}"
-        ) from None
+        raise GraphInputError(f"charge must be {_CHARGE_RULE}; got {type(charge).__name__}") from None
     if not values:
-        raise GraphInputError("charge must be a real number in [0, 0.5] or a non-empty list of them; got an empty list")
+        raise GraphInputError(f"charge must be {_CHARGE_RULE}; got an empty list")
     out = []
     for q in values:
         if isinstance(q, bool) or not isinstance(q, numbers.Real) or not math.isfinite(float(q)):
@@ -52,7 +51,7 @@ def _check_charges(charge, learn: bool) -> tuple:
         q = float(q)
         if not 0.0 <= q <= 0.5:
             raise GraphInputError(f"charge must lie in [0, 0.5]; got {q}")
-        if learn and not 0.0 < q < 0.5:
+        if learned and not 0.0 < q < 0.5:
             raise GraphInputError(
                 f"a learned charge must start inside the open interval (0, 0.5), where its map "
                 f"q = 0.5 * sigmoid(u) is defined; got {q} (start at a small value such as 0.02)"
@@ -61,7 +60,51 @@ def _check_charges(charge, learn: bool) -> tuple:
     return tuple(out), scalar
 
 
-class MagneticFilter(_CachedOperators, nn.Module):
+class LearnedCharge:
+    r"""A charge that :class:`MagneticFilter` learns, starting from ``start``.
+
+    Pass it as ``MagneticFilter(..., charge=LearnedCharge(start=0.05))``. Each charge becomes a
+    parameter through :math:`q = \tfrac12 \sigma(u)` (see :class:`MagneticFilter`), so the start
+    must lie in the open interval (0, 0.5).
+
+    Args:
+        start: one float, or a list of G floats (a learned bank), each in (0, 0.5).
+
+    Example:
+        >>> LearnedCharge(start=0.05)
+        LearnedCharge(start=0.05)
+        >>> LearnedCharge(start=[0.02, 0.2]).start
+        (0.02, 0.2)
+    """
+
+    __slots__ = ("start", "_scalar")
+
+    def __init__(self, start):
+        values, scalar = _charge_values(start, learned=True)
+        object.__setattr__(self, "start", values)
+        object.__setattr__(self, "_scalar", scalar)
+
+    def __setattr__(self, name, value):
+        raise AttributeError("LearnedCharge is immutable; make a new one")
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, LearnedCharge) and other.start == self.start and other._scalar == self._scalar
+
+    def __hash__(self) -> int:
+        return hash((LearnedCharge, self.start, self._scalar))
+
+    def __repr__(self) -> str:
+        return f"LearnedCharge(start={self.start[0] if self._scalar else list(self.start)})"
+
+    def __reduce__(self):
+        return (LearnedCharge, (self.start[0] if self._scalar else list(self.start),))
+
+
+def _as_list(values: torch.Tensor) -> list:
+    return [float(v) for v in values.detach().reshape(-1).cpu().tolist()]
+
+
+class MagneticFilter(nn.Module):
     r"""Chebyshev filter on the normalized magnetic Laplacian: :math:`Y = \sum_k T_k(L(q) - I) X W_k + b`.
 
     :math:`L(q) = I - D^{-1/2} H(q) D^{-1/2}` with :math:`H(q) = A_s \odot e^{i 2\pi q (A - A^T)}`
@@ -72,31 +115,39 @@ class MagneticFilter(_CachedOperators, nn.Module):
     q sets how strongly edge direction shows as phase: q = 0 ignores direction (the normalized
     Laplacian of :math:`A_s`), q = 0.25 makes one-way edges purely imaginary.
 
-    Charges:
+    Charges (``charge`` is keyword-only and has no default: choose it):
 
     * one float: one operator; all C_out output channels use it.
     * a list of G floats (a bank): C_out must be divisible by G; output channels
       ``g * C_out // G`` to ``(g + 1) * C_out // G - 1`` use charge g (block g of the columns of
       every W_k and of the bias).
-    * ``learn_charge=True``: each charge is a parameter. It is kept in [0, 0.5] by
-      :math:`q = \tfrac12 \sigma(u)` with :math:`u` (``charge_logit``) unconstrained, starting at
-      :math:`u_0 = \operatorname{logit}(2 q_0)`. The map has no flat spot: :math:`dq/du = q (1 - 2q)`
-      is zero only in the limits q -> 0 or q -> 0.5, which are never reached, and near 0,
-      :math:`d \log q / du = 1 - 2q \approx 1`, so a small starting charge grows geometrically
-      when the loss asks for it (a map such as :math:`q = \tfrac14 (1 - \cos\theta)` has
-      :math:`dq/d\theta = 0` exactly at q = 0 and can stay stuck there). The start must therefore
-      lie in the open interval (0, 0.5). The operator is then rebuilt from q on every forward
-      through :func:`phasorgraph.operators.magnetic_product` (values built once per forward, differentiable in q).
+    * :class:`LearnedCharge` ``(start=q0)`` (q0 one float or a list): each charge is a parameter.
+      It is kept in [0, 0.5] by :math:`q = \tfrac12 \sigma(u)` with :math:`u` (``charge_logit``)
+      unconstrained, starting at :math:`u_0 = \operatorname{logit}(2 q_0)`. The map has no flat
+      spot: :math:`dq/du = q (1 - 2q)` is zero only in the limits q -> 0 or q -> 0.5, which are
+      never reached, and near 0, :math:`d \log q / du = 1 - 2q \approx 1`, so a small starting
+      charge grows geometrically when the loss asks for it (a map such as
+      :math:`q = \tfrac14 (1 - \cos\theta)` has :math:`dq/d\theta = 0` exactly at q = 0 and can
+      stay stuck there). The start must therefore lie in the open interval (0, 0.5). The
+      operator is then rebuilt from q on every forward through ``graph.magnetic_product``
+      (:func:`phasorgraph.operators.magnetic_product`; values built once per forward,
+      differentiable in q). :meth:`freeze_charge` turns a learned charge into a fixed one.
 
-    With a fixed charge the operator is built once per graph and cached in a plain attribute
-    (a few graphs at a time; no sparse buffers, so DistributedDataParallel can wrap the layer).
+    With a fixed charge the operator comes from ``graph.operator(magnetic_laplacian, ...)``:
+    built once per graph, kept with the graph (it goes when the graph goes), never a buffer, so
+    DistributedDataParallel can wrap the layer.
+
+    Saving: a fixed charge or bank is kept in the ``state_dict`` as the buffer ``fixed_charge``
+    (G,) float64 (a learned one as ``charge_logit``). Loading a state into a layer with other
+    fixed charges, or a learned state into a fixed-charge layer (or the reverse), raises
+    :class:`~phasorgraph.GraphInputError` naming both.
 
     Args:
         in_channels: C_in.
         out_channels: C_out (a multiple of the number of charges).
         order: K >= 0, the polynomial degree (K + 1 weight matrices).
-        charge: q in [0, 0.5] or a list of them (default 0.25).
-        learn_charge: make each charge a parameter (default False).
+        charge: keyword-only, required: q in [0, 0.5], a list of them, or a
+            :class:`LearnedCharge`.
         bias: learn an additive bias (default True).
         complex_weights: fully complex W_k and bias (default False: real weights act on the real
             and imaginary parts alike; a real bias adds to the real part).
@@ -113,13 +164,15 @@ class MagneticFilter(_CachedOperators, nn.Module):
             ``complex_weights`` (``torch.view_as_complex(weight)``). Init U(-s, s),
             s = 1 / sqrt((K + 1) C_in); complex parts U(-s / sqrt 2, s / sqrt 2).
         bias: (C_out,) (or (C_out, 2)), same distribution, or None.
-        charge_logit: (G,) when ``learn_charge``, else absent.
+        charge_logit: (G,) when the charge is learned, else absent.
+        fixed_charge: (G,) float64 buffer when the charge is fixed, else absent.
         charge: the current charge(s) as a tensor: 0-dim when one float was given, else (G,).
             Differentiable when learned.
+        learns_charge (bool): whether the charge is a parameter.
 
     References:
-        X. Zhang et al., MagNet: a neural network for
-        directed graphs, NeurIPS 2021. M. Defferrard et al., NeurIPS 2016.
+        X. Zhang, Y. He, N. Brugnone, M. Perlmutter, M. Hirn, NeurIPS 2021.
+        M. Defferrard, X. Bresson, P. Vandergheynst, NeurIPS 2016.
 
     Example:
         >>> import torch
@@ -128,21 +181,25 @@ class MagneticFilter(_CachedOperators, nn.Module):
         >>> layer = MagneticFilter(2, 4, order=2, charge=[0.0, 0.25])
         >>> y = layer(torch.randn(3, 2), g); y.shape, y.dtype
         (torch.Size([3, 4]), torch.complex64)
-        >>> learned = MagneticFilter(2, 4, order=1, charge=0.02, learn_charge=True)
+        >>> learned = MagneticFilter(2, 4, order=1, charge=LearnedCharge(start=0.02))
         >>> round(float(learned.charge.detach()), 6)
         0.02
     """
 
-    def __init__(self, in_channels: int, out_channels: int, order: int,
-                 charge: Union[float, Sequence[float]] = 0.25, learn_charge: bool = False, *,
+    def __init__(self, in_channels: int, out_channels: int, order: int, *,
+                 charge: Union[float, Sequence[float], LearnedCharge],
                  bias: bool = True, complex_weights: bool = False, phase: str = "difference",
                  device=None, dtype=None):
         super().__init__()
         self.in_channels = _check_count("in_channels", in_channels)
         self.out_channels = _check_count("out_channels", out_channels)
         self.order = _check_count("order", order, minimum=0)
-        self.learn_charge = bool(learn_charge)
-        self.initial_charge, self._scalar_charge = _check_charges(charge, self.learn_charge)
+        if isinstance(charge, LearnedCharge):
+            self.learns_charge = True
+            self.initial_charge, self._scalar_charge = charge.start, charge._scalar
+        else:
+            self.learns_charge = False
+            self.initial_charge, self._scalar_charge = _charge_values(charge, learned=False)
         groups = len(self.initial_charge)
         if self.out_channels % groups:
             raise GraphInputError(
@@ -153,16 +210,19 @@ class MagneticFilter(_CachedOperators, nn.Module):
         self.complex_weights = bool(complex_weights)
         factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
         _make_chebyshev_parameters(self, bias, factory)
-        if self.learn_charge:
+        if self.learns_charge:
             self.charge_logit = nn.Parameter(torch.empty(groups, **factory))
-        self._operators = _OperatorCache()
+        else:
+            # saved with the weights so a state_dict cannot be loaded into a layer of other charges;
+            # the Python floats in initial_charge stay the values used
+            self.register_buffer("fixed_charge", torch.tensor(self.initial_charge, dtype=torch.float64, device=device))
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """Weights U(-s, s), s = 1 / sqrt((order + 1) in_channels); charge logits logit(2 q_0)."""
         _reset_chebyshev_parameters(self)
         with torch.no_grad():
-            if self.learn_charge:
+            if self.learns_charge:
                 start = torch.tensor(self.initial_charge, dtype=torch.float64)
                 self.charge_logit.copy_(torch.logit(2 * start))
 
@@ -173,17 +233,76 @@ class MagneticFilter(_CachedOperators, nn.Module):
     @property
     def charge(self) -> torch.Tensor:
         """Current charge(s): 0-dim if one float was given, else (G,); differentiable when learned."""
-        if self.learn_charge:
+        if self.learns_charge:
             q = 0.5 * torch.sigmoid(self.charge_logit)
         else:
             q = torch.tensor(self.initial_charge, dtype=self.weight.dtype, device=self.weight.device)
         return q[0] if self._scalar_charge else q
 
+    def _current_charges(self) -> tuple:
+        """The charges as Python floats (learned ones at their current value, in float64)."""
+        if not self.learns_charge:
+            return self.initial_charge
+        with torch.no_grad():
+            q = 0.5 * torch.sigmoid(self.charge_logit.detach().to(device="cpu", dtype=torch.float64))
+        return tuple(float(v) for v in q)
+
+    def freeze_charge(self) -> "MagneticFilter":
+        """Turn a learned charge into a fixed one at its current value; returns the layer.
+
+        ``charge_logit`` is removed; the state_dict afterwards loads into a fixed-charge layer
+        built with ``charge=layer.initial_charge`` (a float or a list, as given at the start).
+        A layer whose charge is already fixed is returned unchanged.
+
+        Example:
+            >>> layer = MagneticFilter(2, 2, order=1, charge=LearnedCharge(start=0.1))
+            >>> layer.freeze_charge().learns_charge, layer.initial_charge
+            (False, (0.1,))
+        """
+        if self.learns_charge:
+            self.initial_charge = self._current_charges()
+            self.learns_charge = False
+            device = self.charge_logit.device
+            del self.charge_logit
+            self.register_buffer("fixed_charge", torch.tensor(self.initial_charge, dtype=torch.float64, device=device))
+        return self
+
+    def _load_from_state_dict(self, state_dict, prefix, local_metadata, strict, missing_keys, unexpected_keys,
+                              error_msgs):
+        # check the saved charges against this layer's before torch copies the tensors
+        saved = state_dict.get(prefix + "fixed_charge")
+        learned = (prefix + "charge_logit") in state_dict
+        if self.learns_charge and saved is not None and not learned:
+            raise GraphInputError(
+                f"state_dict holds a fixed charge {_as_list(saved)} but this MagneticFilter learns its charge; "
+                f"build the layer with charge={_as_list(saved)}"
+            )
+        if not self.learns_charge and learned and saved is None:
+            raise GraphInputError(
+                "state_dict holds a learned charge (charge_logit) but this MagneticFilter has a fixed charge; "
+                "call freeze_charge() on the trained layer before saving, or build this layer with "
+                "charge=LearnedCharge(...)"
+            )
+        if not self.learns_charge and saved is not None:
+            values = _as_list(saved)
+            rel = 1e-6 if saved.dtype != torch.float64 else 1e-12   # a float32 copy keeps ~7 digits
+            if len(values) != self.num_charges or any(abs(a - b) > rel * max(1.0, abs(b))
+                                                      for a, b in zip(values, self.initial_charge)):
+                raise GraphInputError(
+                    f"state_dict was saved from a MagneticFilter with charge {values} but this layer has "
+                    f"charge {list(self.initial_charge)}; build the layer with charge={values}"
+                )
+        super()._load_from_state_dict(state_dict, prefix, local_metadata, strict, missing_keys, unexpected_keys,
+                                      error_msgs)
+
     def extra_repr(self) -> str:
         q = self.initial_charge[0] if self._scalar_charge else list(self.initial_charge)
-        s = f"{self.in_channels}, {self.out_channels}, order={self.order}, charge={q}"
-        if self.learn_charge:
-            s += ", learn_charge=True"
+        if self.learns_charge:
+            now = self._current_charges()
+            now = f"{now[0]:.4g}" if self._scalar_charge else "[" + ", ".join(f"{v:.4g}" for v in now) + "]"
+            s = f"{self.in_channels}, {self.out_channels}, order={self.order}, charge={LearnedCharge(q)!r}, charge_now={now}"
+        else:
+            s = f"{self.in_channels}, {self.out_channels}, order={self.order}, charge={q}"
         if self.bias is None:
             s += ", bias=False"
         if self.complex_weights:
@@ -192,21 +311,17 @@ class MagneticFilter(_CachedOperators, nn.Module):
             s += f", phase={self.phase!r}"
         return s
 
-    def _operator(self, graph: DirectedGraph, q: float, cdtype: torch.dtype):
-        device = self.weight.device
-        return self._operators.get(
-            graph, ("magnetic_laplacian", q, self.phase, cdtype, str(device)),
-            lambda: magnetic_laplacian(graph, q, normalized=True, phase=self.phase, dtype=cdtype).to(device=device))
+    def forward(self, x: torch.Tensor, graph) -> torch.Tensor:
+        """Filter ``x`` (graph.num_rows, C_in) on ``graph``; returns (graph.num_rows, C_out) complex.
 
-    def forward(self, x: torch.Tensor, graph: DirectedGraph) -> torch.Tensor:
-        """Filter ``x`` (N, C_in) on ``graph``; returns (N, C_out) complex."""
-        if not isinstance(graph, DirectedGraph):
-            raise GraphInputError(
-                f"graph must be a DirectedGraph (MagneticFilter builds its magnetic Laplacian from "
-                f"the edges); got {type(graph).__name__}"
-            )
+        ``graph`` is a DirectedGraph or another graph-like object (one that offers
+        ``num_nodes``, ``num_rows``, ``operator(builder, **options)`` and
+        ``magnetic_product(charge, phase=...)``, such as a shard of a distributed graph).
+        """
+        graph = _check_graph_like(graph, "MagneticFilter",
+                                  ("num_nodes", "num_rows", "operator", "magnetic_product"))
         precision, device = self.weight.dtype, self.weight.device
-        x = _check_features(x, graph.num_nodes, self.in_channels, precision, device)
+        x = _check_features(x, graph.num_rows, self.in_channels, precision, device)
         cdtype = _COMPLEX_OF[precision]
         if not x.is_complex():
             x = x.to(cdtype)
@@ -214,16 +329,17 @@ class MagneticFilter(_CachedOperators, nn.Module):
             return _empty_output(x, self.out_channels, cdtype, self.parameters())
         w = _complex_view(self.weight) if self.complex_weights else self.weight
         width = self.out_channels // self.num_charges
-        charges = self.charge.reshape(-1) if self.learn_charge else self.initial_charge
+        charges = self.charge.reshape(-1) if self.learns_charge else self.initial_charge
         groups = []
         for g in range(self.num_charges):
             wg = w[:, :, g * width:(g + 1) * width]
-            if self.learn_charge:
+            if self.learns_charge:
                 # values built once per charge and forward, shared by the K products
-                product = magnetic_product(graph, charges[g], phase=self.phase)
+                product = graph.magnetic_product(charges[g], phase=self.phase)
             else:
-                product = self._operator(graph, charges[g], cdtype).matmul
-            # L~ = L(q) - I: lmax = 2 for the normalized magnetic Laplacian
+                product = graph.operator(magnetic_laplacian, charge=charges[g], normalized=True, phase=self.phase,
+                                         dtype=cdtype, device=device).matmul
+            # L~ = L(q) - I: max_eigenvalue = 2 for the normalized magnetic Laplacian
             groups.append(_chebyshev_sum(x, product, 1.0, -1.0, wg))
         out = groups[0] if len(groups) == 1 else torch.cat(groups, dim=1)
         if self.bias is None:
