@@ -11,8 +11,8 @@ from torch import nn
 
 from .. import operators
 from ..errors import GraphInputError
-from .filters import _check_graph_like
-from .wavelets import _check_node_features, _check_scales, _diffusion_powers, _dyadic_bands
+from ._diffusion import diffusion_powers, dyadic_bands
+from ._layer import check_count, check_features, check_graph_like
 
 __all__ = ["BandMix"]
 
@@ -92,13 +92,10 @@ class BandMix(nn.Module):
     def __init__(self, in_channels: int, out_channels: int, low_pass_steps: Sequence[int] | int = (1, 2, 3),
                  scales: int = 3, bias: bool = True, *, device=None, dtype=None):
         super().__init__()
-        for name, v in (("in_channels", in_channels), ("out_channels", out_channels)):
-            if isinstance(v, bool) or not isinstance(v, numbers.Integral) or v < 1:
-                raise GraphInputError(f"{name} must be an integer >= 1; got {v!r}")
-        self.in_channels = int(in_channels)
-        self.out_channels = int(out_channels)
+        self.in_channels = check_count("in_channels", in_channels)
+        self.out_channels = check_count("out_channels", out_channels)
         self.low_pass_steps = _check_steps(low_pass_steps)
-        self.scales = _check_scales(scales)
+        self.scales = check_count("scales", scales)
         self.num_channels = len(self.low_pass_steps) + self.scales + 1
         factory = {"device": device, "dtype": dtype}
         self.weight = nn.Parameter(torch.empty(self.num_channels, self.out_channels, self.in_channels, **factory))
@@ -128,13 +125,13 @@ class BandMix(nn.Module):
 
     def channels(self, x: torch.Tensor, graph) -> torch.Tensor:
         """The stacked input channels (N, C, F) before the maps: low-pass first, then band-pass."""
-        graph = _check_graph_like(graph, "BandMix")
-        x = _check_node_features(x, graph.num_rows, in_channels=self.in_channels)
+        graph = check_graph_like(graph, "BandMix")
+        x = check_features(x, graph.num_rows, self.in_channels, shape="(N, F)", restate_shape=False)
         if x.is_complex() or x.dtype not in (torch.float32, torch.float64):
             raise GraphInputError(f"x must be real float32 or float64 for BandMix; got dtype {x.dtype}")
         adj, diff = self._graph_operators(graph, x.dtype, x.device)
-        low = torch.stack(_diffusion_powers(adj, None, x, self.low_pass_steps), dim=1)
-        band = _dyadic_bands(diff, None, x, self.scales)[:, :-1].abs()
+        low = torch.stack(diffusion_powers(adj, None, x, self.low_pass_steps), dim=1)
+        band = dyadic_bands(diff, None, x, self.scales)[:, :-1].abs()
         return torch.cat([low, band], dim=1)
 
     def forward(self, x: torch.Tensor, graph) -> torch.Tensor:

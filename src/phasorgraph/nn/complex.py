@@ -21,7 +21,7 @@ import torch
 from torch import nn
 
 from ..errors import GraphInputError
-from .filters import _check_count, _real_factory_dtype
+from ._layer import check_count, real_factory_dtype
 
 __all__ = [
     "ModReLU",
@@ -80,8 +80,8 @@ class ModReLU(nn.Module):
 
     def __init__(self, num_features: int, *, device=None, dtype=None):
         super().__init__()
-        self.num_features = _check_count("num_features", num_features)
-        self.bias = nn.Parameter(torch.empty(self.num_features, device=device, dtype=_real_factory_dtype(dtype)))
+        self.num_features = check_count("num_features", num_features)
+        self.bias = nn.Parameter(torch.empty(self.num_features, device=device, dtype=real_factory_dtype(dtype)))
         self.reset_parameters()
 
     def reset_parameters(self) -> None:

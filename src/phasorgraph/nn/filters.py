@@ -21,44 +21,20 @@ from __future__ import annotations
 import math
 import numbers
 import weakref
-from typing import Callable, Optional, Sequence
+from typing import Optional, Sequence
 
 import torch
 from torch import nn
-from torch.autograd.function import once_differentiable
 
 from ..errors import GraphInputError
 from ..operators import renormalized_adjacency
 from ..sparse import SparseOperator
 from ..spectral import DENSE_NODE_LIMIT, fourier_basis, largest_eigenvalue
+from ._chebyshev import ChebyshevBase
+from ._layer import (COMPLEX_OF, bilinear, check_count, check_features, check_graph_like, check_operator, empty_output,
+                     factory_kwargs, make_parameters, mix, output_dtype, reset_uniform)
 
 __all__ = ["ChebyshevFilter", "RenormalizedFilter", "SpectralMultiplier"]
-
-_REAL = (torch.float32, torch.float64)
-_COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
-_REAL_OF = {torch.complex64: torch.float32, torch.complex128: torch.float64,
-            torch.float32: torch.float32, torch.float64: torch.float64}
-
-
-# ---------------------------------------------------------------------- argument checks
-def _check_count(name: str, value, minimum: int = 1) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {value!r}")
-    if int(value) < minimum:
-        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {int(value)}")
-    return int(value)
-
-
-def _real_factory_dtype(dtype) -> Optional[torch.dtype]:
-    """The real parameter dtype for factory kwargs (a complex dtype selects its precision)."""
-    if dtype is None:
-        return None
-    if dtype not in _REAL_OF:
-        raise GraphInputError(
-            f"dtype must be torch.float32 or torch.float64 (or complex64/complex128 for that "
-            f"precision); got {dtype}"
-        )
-    return _REAL_OF[dtype]
 
 
 def _check_max_eigenvalue(value, name: str = "max_eigenvalue") -> Optional[float]:
@@ -70,226 +46,7 @@ def _check_max_eigenvalue(value, name: str = "max_eigenvalue") -> Optional[float
     return float(value)
 
 
-def _check_graph_like(graph, layer: str, needs: tuple = ("num_nodes", "num_rows", "operator")):
-    """A DirectedGraph or any object answering the graph-like protocol (no isinstance on types).
-
-    The protocol: ``num_nodes`` (nodes of the whole graph), ``num_rows`` (rows of x held here),
-    ``operator(builder, device=..., **options)`` and, for a learned charge,
-    ``magnetic_product(charge, phase=...)``.
-    """
-    missing = [name for name in needs if not hasattr(graph, name)]
-    if missing:
-        raise GraphInputError(
-            f"graph must be a DirectedGraph (or a graph-like object with {', '.join(needs)}, such as a shard "
-            f"of a distributed graph) for {layer}; got {type(graph).__name__}, which lacks {', '.join(missing)}"
-        )
-    return graph
-
-
-def _check_features(x, num_nodes: int, in_channels: int, precision: torch.dtype, device) -> torch.Tensor:
-    """Validate (N, C_in) features against the graph size, the layer width and precision."""
-    if not isinstance(x, torch.Tensor):
-        raise GraphInputError(f"x must be a torch.Tensor of shape (N, C_in); got {type(x).__name__}")
-    if x.dim() != 2:
-        raise GraphInputError(f"x must have shape (N, C_in) (2-D); got shape {tuple(x.shape)}")
-    if x.shape[0] != num_nodes:
-        raise GraphInputError(
-            f"x must have num_nodes = {num_nodes} rows (shape (N, C_in)); got shape {tuple(x.shape)}"
-        )
-    if x.shape[1] != in_channels:
-        raise GraphInputError(
-            f"x must have in_channels = {in_channels} columns (shape (N, C_in)); got shape {tuple(x.shape)}"
-        )
-    if x.dtype not in _REAL_OF:
-        raise GraphInputError(f"x dtype must be float32, float64, complex64 or complex128; got {x.dtype}")
-    if _REAL_OF[x.dtype] != precision:
-        raise GraphInputError(
-            f"x has dtype {x.dtype} but the layer's parameters are {precision}; use the same "
-            f"precision (layer.to({precision}) or x.to(...))"
-        )
-    if x.device != device:
-        raise GraphInputError(f"x is on {x.device} but the layer's parameters are on {device}; move one of them")
-    return x
-
-
-def _check_operator(op, precision: torch.dtype, device, *, layer: str) -> SparseOperator:
-    if not isinstance(op, SparseOperator):
-        raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
-    if _REAL_OF[op.dtype] != precision:
-        raise GraphInputError(
-            f"op has dtype {op.dtype} but {layer}'s parameters are {precision}; use op.to(...) or "
-            f"layer.to(...) so the precisions match"
-        )
-    if op.device != device:
-        raise GraphInputError(f"op is on {op.device} but {layer}'s parameters are on {device}; move one of them")
-    return op
-
-
-# ---------------------------------------------------------------------- small numerics
-def _bilinear(f: Callable, a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
-    """``f(a, b)`` for a bilinear ``f`` when a and b may differ in being real or complex.
-
-    A real factor never gets cast to complex: ``f(a_re, b) + i f(a_im, b)`` instead.
-    """
-    if a.is_complex() == b.is_complex():
-        return f(a, b)
-    if a.is_complex():
-        return torch.complex(f(a.real, b), f(a.imag, b))
-    return torch.complex(f(a, b.real), f(a, b.imag))
-
-
-def _complex_view(weight: torch.Tensor) -> torch.Tensor:
-    """Complex tensor from real pairs (..., 2)."""
-    return torch.view_as_complex(weight)
-
-
-def init_uniform_(tensor: torch.Tensor, bound: float) -> torch.Tensor:
-    """Real weights: i.i.d. U(-bound, bound), in place (variance bound^2 / 3)."""
-    with torch.no_grad():
-        return tensor.uniform_(-bound, bound)
-
-
-def init_complex_uniform_(pairs: torch.Tensor, bound: float) -> torch.Tensor:
-    r"""Complex weights stored as real pairs (..., 2): real and imaginary parts i.i.d. U(-a, a).
-
-    :math:`a = \mathrm{bound} / \sqrt 2`, so :math:`E|w|^2 = \mathrm{bound}^2 / 3`: the same
-    second moment as the real initialization :func:`init_uniform_` with the same bound.
-    """
-    with torch.no_grad():
-        a = bound / math.sqrt(2.0)
-        return pairs.uniform_(-a, a)
-
-
-def _empty_output(x: torch.Tensor, out_channels: int, dtype: torch.dtype, params) -> torch.Tensor:
-    """The (0, C_out) output of a graph without nodes, still attached to the parameters' graph.
-
-    (A zero-row product is answered here rather than handed to the sparse kernels.)
-    """
-    anchor = sum(p.sum() * 0 for p in params) + x.sum() * 0
-    return torch.zeros(0, out_channels, dtype=dtype, device=x.device) + anchor
-
-
-def _output_dtype(*tensors_or_ops) -> torch.dtype:
-    cplx = any(t.is_complex() if isinstance(t, torch.Tensor) else t.is_complex for t in tensors_or_ops)
-    real = next(t.dtype for t in tensors_or_ops if isinstance(t, torch.Tensor))
-    real = _REAL_OF[real]
-    return _COMPLEX_OF[real] if cplx else real
-
-
-class _ComplexRealMatmul(torch.autograd.Function):
-    """``t @ w`` for complex t (N, C) and real w (C, O), the weight never cast to complex.
-
-    Forward ``Re(t) w + i Im(t) w``; backward ``g w^T`` for t (complex) and
-    ``Re(t)^T Re(g) + Im(t)^T Im(g)`` for w, so no zero-filled complex gradient blocks are built
-    for the real and imaginary views.
-    """
-
-    @staticmethod
-    def forward(ctx, t, w):
-        ctx.save_for_backward(t, w)
-        return torch.complex(t.real @ w, t.imag @ w)
-
-    @staticmethod
-    @once_differentiable
-    def backward(ctx, g):
-        t, w = ctx.saved_tensors
-        grad_t = grad_w = None
-        if ctx.needs_input_grad[0]:
-            wt = w.T
-            grad_t = torch.complex(g.real @ wt, g.imag @ wt)
-        if ctx.needs_input_grad[1]:
-            grad_w = t.real.T @ g.real + t.imag.T @ g.imag
-        return grad_t, grad_w
-
-
-def _mix(t: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
-    """``t @ w`` for real or complex t and w (a real factor is never cast to complex)."""
-    if t.is_complex() and not w.is_complex():
-        return _ComplexRealMatmul.apply(t, w)
-    if w.is_complex() and not t.is_complex():
-        return t.to(w.dtype) @ w
-    return t @ w
-
-
-def _add_bias(out: torch.Tensor, bias: Optional[torch.Tensor]) -> torch.Tensor:
-    """``out + bias``, in place when the dtypes allow (out is always a fresh, non-view tensor here)."""
-    if bias is None:
-        return out
-    if torch.promote_types(out.dtype, bias.dtype) == out.dtype:
-        return out.add_(bias)
-    return out + bias
-
-
-def _chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tensor], alpha: float, beta: float,
-                   weights: torch.Tensor) -> torch.Tensor:
-    r""":math:`\sum_k T_k W_k` with :math:`\tilde L t = \alpha P t + \beta t` and ``product`` applying P.
-
-    :math:`T_0 = x`, :math:`T_1 = \tilde L x`, :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}`
-    (Hammond et al. 2011); ``weights`` is (K + 1, C_in, C_out). Terms and the output are
-    accumulated in place where autograd allows it, so memory holds the K + 1 terms autograd
-    needs, the output and about two transient blocks.
-    """
-    order = weights.shape[0] - 1
-    out = _mix(x, weights[0])
-    if order == 0:
-        return out
-
-    def add(out, term):
-        return out.add_(term) if out.dtype == term.dtype else out + term
-
-    def scaled(t, a):
-        # a fresh tensor a * P t that may be changed in place (the sparse kernels return views,
-        # which autograd forbids changing in place; those get one copy through mul)
-        p = product(t)
-        if p._is_view():
-            return p.mul(a)
-        return p if a == 1 else p.mul_(a)
-
-    prev, cur = x, scaled(x, alpha).add_(x, alpha=beta)
-    out = add(out, _mix(cur, weights[1]))
-    for k in range(2, order + 1):
-        nxt = scaled(cur, 2 * alpha).add_(cur, alpha=2 * beta).sub_(prev)
-        prev, cur = cur, nxt
-        out = add(out, _mix(cur, weights[k]))
-    return out
-
-
-# ---------------------------------------------------------------------- Chebyshev
-
-def _make_parameters(module: nn.Module, weight_shape: tuple, bias: bool, factory: dict,
-                     complex_pairs: bool = False) -> None:
-    """Register ``weight`` of ``weight_shape`` and ``bias`` (C_out,) or None; a trailing axis of 2
-    holds (real, imaginary) pairs when ``complex_pairs``."""
-    pair = (2,) if complex_pairs else ()
-    module.weight = nn.Parameter(torch.empty(tuple(weight_shape) + pair, **factory))
-    if bias:
-        module.bias = nn.Parameter(torch.empty((module.out_channels,) + pair, **factory))
-    else:
-        module.register_parameter("bias", None)
-
-
-def _reset_uniform(module: nn.Module, bound: float, complex_pairs: bool = False) -> None:
-    """U(-bound, bound) for weight and bias (complex pairs: :func:`init_complex_uniform_`),
-    in place under ``torch.no_grad()``."""
-    init = init_complex_uniform_ if complex_pairs else init_uniform_
-    with torch.no_grad():
-        init(module.weight, bound)
-        if module.bias is not None:
-            init(module.bias, bound)
-
-
-def _make_chebyshev_parameters(module: nn.Module, bias: bool, factory: dict) -> None:
-    """Weight (K + 1, C_in, C_out[, 2]) and bias of a Chebyshev-type layer."""
-    _make_parameters(module, (module.order + 1, module.in_channels, module.out_channels), bias, factory,
-                     module.complex_weights)
-
-
-def _reset_chebyshev_parameters(module: nn.Module) -> None:
-    """U(-s, s), s = 1 / sqrt((K + 1) C_in), for weight and bias."""
-    _reset_uniform(module, 1.0 / math.sqrt((module.order + 1) * module.in_channels), module.complex_weights)
-
-
-class ChebyshevFilter(nn.Module):
+class ChebyshevFilter(ChebyshevBase):
     r"""Chebyshev polynomial filter :math:`Y = \sum_{k=0}^{K} T_k(\tilde L)\, X W_k + b`.
 
     :math:`\tilde L = 2 L / \lambda_{max} - I` maps the spectrum :math:`[0, \lambda_{max}]` of a
@@ -345,51 +102,24 @@ class ChebyshevFilter(nn.Module):
     def __init__(self, in_channels: int, out_channels: int, order: int, bias: bool = True,
                  complex_weights: bool = False, *, max_eigenvalue: Optional[float] = None, device=None,
                  dtype=None):
-        super().__init__()
-        self.in_channels = _check_count("in_channels", in_channels)
-        self.out_channels = _check_count("out_channels", out_channels)
-        self.order = _check_count("order", order, minimum=0)
-        self.complex_weights = bool(complex_weights)
+        super().__init__(in_channels, out_channels, order, bias=bias, complex_weights=complex_weights,
+                         device=device, dtype=dtype)
         self.max_eigenvalue = _check_max_eigenvalue(max_eigenvalue)
-        _make_chebyshev_parameters(self, bias, {"device": device, "dtype": _real_factory_dtype(dtype)})
         self.reset_parameters()
 
-    def reset_parameters(self) -> None:
-        """U(-s, s) with s = 1 / sqrt((order + 1) in_channels) (complex: see the class docstring)."""
-        _reset_chebyshev_parameters(self)
-
-    def extra_repr(self) -> str:
-        s = f"{self.in_channels}, {self.out_channels}, order={self.order}"
-        if self.bias is None:
-            s += ", bias=False"
-        if self.complex_weights:
-            s += ", complex_weights=True"
-        if self.max_eigenvalue is not None:
-            s += f", max_eigenvalue={self.max_eigenvalue}"
-        return s
-
-    # the pieces MagneticFilter reuses -----------------------------------------------
-    def _weights(self) -> torch.Tensor:
-        return _complex_view(self.weight) if self.complex_weights else self.weight
-
-    def _bias(self) -> Optional[torch.Tensor]:
-        if self.bias is None:
-            return None
-        return _complex_view(self.bias) if self.complex_weights else self.bias
-
-    def _precision(self) -> torch.dtype:
-        return self.weight.dtype
+    def _repr_options(self):
+        return () if self.max_eigenvalue is None else (f"max_eigenvalue={self.max_eigenvalue}",)
 
     def forward(self, x: torch.Tensor, op: SparseOperator, max_eigenvalue: Optional[float] = None) -> torch.Tensor:
         """Filter ``x`` (N, C_in) with the operator ``op``; ``max_eigenvalue`` overrides the stored value."""
-        precision = self._precision()
-        op = _check_operator(op, precision, self.weight.device, layer="ChebyshevFilter")
+        precision, device = self.weight.dtype, self.weight.device
+        op = check_operator(op, precision, device, layer="ChebyshevFilter")
         if not op.hermitian:
             raise GraphInputError(
                 f"op must be real symmetric or Hermitian for ChebyshevFilter (its max_eigenvalue and cheap "
                 f"backward rely on it); got kind {op.kind!r} with hermitian=False"
             )
-        x = _check_features(x, op.num_rows, self.in_channels, precision, self.weight.device)
+        x = check_features(x, op.num_rows, self.in_channels, precision, device)
         lam = _check_max_eigenvalue(max_eigenvalue, "max_eigenvalue (forward)")
         if lam is None:
             lam = self.max_eigenvalue
@@ -403,12 +133,9 @@ class ChebyshevFilter(nn.Module):
             if lam <= 1e-12:
                 lam = 1.0  # the zero operator: L~ = -I whatever max_eigenvalue > 0 is used
         if op.num_nodes == 0:
-            return _empty_output(x, self.out_channels, _output_dtype(x, op, self._weights()), self.parameters())
-        w = self._weights()
-        if w.is_complex() and not x.is_complex():
-            x = x.to(w.dtype)
-        out = _chebyshev_sum(x, op.matmul, 2.0 / lam, -1.0, w)
-        return _add_bias(out, self._bias())
+            return empty_output(x, self.out_channels, output_dtype(x, op, self._weights()), self.parameters())
+        # L~ = 2 L / lambda_max - I
+        return self._filter(x, [(op.matmul, 2.0 / lam, -1.0)])
 
 
 # ---------------------------------------------------------------------- renormalized
@@ -449,47 +176,46 @@ class RenormalizedFilter(nn.Module):
 
     def __init__(self, in_channels: int, out_channels: int, bias: bool = True, *, device=None, dtype=None):
         super().__init__()
-        self.in_channels = _check_count("in_channels", in_channels)
-        self.out_channels = _check_count("out_channels", out_channels)
-        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        _make_parameters(self, (self.in_channels, self.out_channels), bias, factory)
+        self.in_channels = check_count("in_channels", in_channels)
+        self.out_channels = check_count("out_channels", out_channels)
+        make_parameters(self, (self.in_channels, self.out_channels), bias, factory_kwargs(device, dtype))
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """U(-s, s) with s = 1 / sqrt(in_channels) for weight and bias."""
-        _reset_uniform(self, 1.0 / math.sqrt(self.in_channels))
+        reset_uniform(self, 1.0 / math.sqrt(self.in_channels))
 
     def extra_repr(self) -> str:
         return f"{self.in_channels}, {self.out_channels}" + (", bias=False" if self.bias is None else "")
 
     def _operator(self, op_or_graph):
         precision, device = self.weight.dtype, self.weight.device
-        if isinstance(op_or_graph, SparseOperator):
-            if op_or_graph.is_complex:
+        if not hasattr(op_or_graph, "operator"):   # an operator, not a graph-like object
+            if getattr(op_or_graph, "is_complex", False):
                 raise GraphInputError(
                     f"op must be real for RenormalizedFilter (the renormalized adjacency); got "
                     f"{op_or_graph.dtype} (kind {op_or_graph.kind!r}); use ChebyshevFilter or "
                     f"MagneticFilter for complex operators"
                 )
-            return _check_operator(op_or_graph, precision, device, layer="RenormalizedFilter")
-        if not hasattr(op_or_graph, "operator"):
-            raise GraphInputError(
-                f"op_or_graph must be a SparseOperator or a DirectedGraph (or another graph-like object); got "
-                f"{type(op_or_graph).__name__}"
-            )
-        graph = _check_graph_like(op_or_graph, "RenormalizedFilter")
+            if not hasattr(op_or_graph, "matmul"):
+                raise GraphInputError(
+                    f"op_or_graph must be a SparseOperator or a DirectedGraph (or another graph-like object); got "
+                    f"{type(op_or_graph).__name__}"
+                )
+            return check_operator(op_or_graph, precision, device, layer="RenormalizedFilter")
+        graph = check_graph_like(op_or_graph, "RenormalizedFilter")
         return graph.operator(renormalized_adjacency, dtype=precision, device=device)
 
     def forward(self, x: torch.Tensor, op_or_graph) -> torch.Tensor:
         """``op @ x @ weight + bias``; ``op_or_graph`` a real SparseOperator or a DirectedGraph."""
         op = self._operator(op_or_graph)
-        x = _check_features(x, op.num_rows, self.in_channels, self.weight.dtype, self.weight.device)
+        x = check_features(x, op.num_rows, self.in_channels, self.weight.dtype, self.weight.device)
         if op.num_nodes == 0:
-            return _empty_output(x, self.out_channels, _output_dtype(x, self.weight), self.parameters())
+            return empty_output(x, self.out_channels, output_dtype(x, self.weight), self.parameters())
         if self.out_channels < self.in_channels:
-            out = op @ _mix(x, self.weight)
+            out = op.matmul(mix(x, self.weight))
         else:
-            out = _mix(op @ x, self.weight)
+            out = mix(op.matmul(x), self.weight)
         return out if self.bias is None else out + self.bias
 
 
@@ -585,9 +311,9 @@ class SpectralMultiplier(nn.Module):
                  num_nodes: Optional[int] = None, bias: bool = True, max_nodes: int = DENSE_NODE_LIMIT,
                  device=None, dtype=None):
         super().__init__()
-        self.in_channels = _check_count("in_channels", in_channels)
-        self.out_channels = _check_count("out_channels", out_channels)
-        self.max_nodes = _check_count("max_nodes", max_nodes)
+        self.in_channels = check_count("in_channels", in_channels)
+        self.out_channels = check_count("out_channels", out_channels)
+        self.max_nodes = check_count("max_nodes", max_nodes)
         try:
             low, high = (float(v) for v in interval)
         except (TypeError, ValueError):
@@ -603,7 +329,7 @@ class SpectralMultiplier(nn.Module):
                 )
             if num_nodes is None:
                 raise GraphInputError(f"num_nodes is required with knots={PER_EIGENVALUE!r} (one value per eigenvalue)")
-            self.num_nodes = _check_count("num_nodes", num_nodes)
+            self.num_nodes = check_count("num_nodes", num_nodes)
             if self.num_nodes > self.max_nodes:
                 raise GraphInputError(
                     f"num_nodes = {self.num_nodes} exceeds max_nodes = {self.max_nodes}: SpectralMultiplier "
@@ -613,7 +339,7 @@ class SpectralMultiplier(nn.Module):
             size = self.num_nodes
         else:
             if isinstance(knots, numbers.Integral) and not isinstance(knots, bool):
-                count = _check_count("knots", knots, minimum=2)
+                count = check_count("knots", knots, minimum=2)
                 positions = tuple(low + (high - low) * j / (count - 1) for j in range(count))
             else:
                 try:
@@ -630,13 +356,12 @@ class SpectralMultiplier(nn.Module):
             self.knots = positions
             self.num_nodes = None
             size = len(positions)
-        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        _make_parameters(self, (size, self.in_channels, self.out_channels), bias, factory)
+        make_parameters(self, (size, self.in_channels, self.out_channels), bias, factory_kwargs(device, dtype))
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """U(-s, s) with s = 1 / sqrt(in_channels) for the multiplier values and the bias."""
-        _reset_uniform(self, 1.0 / math.sqrt(self.in_channels))
+        reset_uniform(self, 1.0 / math.sqrt(self.in_channels))
 
     @property
     def per_eigenvalue(self) -> bool:
@@ -664,7 +389,7 @@ class SpectralMultiplier(nn.Module):
 
     def forward(self, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
         precision, device = self.weight.dtype, self.weight.device
-        op = _check_operator(op, precision, device, layer="SpectralMultiplier")
+        op = check_operator(op, precision, device, layer="SpectralMultiplier")
         if not op.hermitian:
             raise GraphInputError(f"op must be Hermitian for SpectralMultiplier; got kind {op.kind!r} with hermitian=False")
         n = op.num_rows
@@ -678,10 +403,10 @@ class SpectralMultiplier(nn.Module):
                 f"op has {n} nodes but this per-eigenvalue SpectralMultiplier was built for "
                 f"num_nodes = {self.num_nodes}; use interpolated knots for graphs of other sizes"
             )
-        x = _check_features(x, n, self.in_channels, precision, device)
+        x = check_features(x, n, self.in_channels, precision, device)
         if n == 0:
-            return _empty_output(x, self.out_channels, _output_dtype(x, op, self.weight), self.parameters())
-        basis_dtype = _COMPLEX_OF[precision] if op.is_complex else precision
+            return empty_output(x, self.out_channels, output_dtype(x, op, self.weight), self.parameters())
+        basis_dtype = COMPLEX_OF[precision] if op.is_complex else precision
         lam, U = _cached_basis(op, basis_dtype, device, self.max_nodes)
         if not self.per_eigenvalue and n:
             low, high = self.interval
@@ -692,13 +417,13 @@ class SpectralMultiplier(nn.Module):
                     f"interval = ({low}, {high}); build the layer with a wider interval"
                 )
         Uh = U.conj().T if U.is_complex() else U.T
-        xh = _bilinear(torch.matmul, Uh, x)                       # (N, C_in)
+        xh = bilinear(torch.matmul, Uh, x)                       # (N, C_in)
         if self.per_eigenvalue:
-            yh = _bilinear(lambda a, b: torch.bmm(a.unsqueeze(1), b).squeeze(1), xh, self.weight)
+            yh = bilinear(lambda a, b: torch.bmm(a.unsqueeze(1), b).squeeze(1), xh, self.weight)
         else:
             knots = torch.tensor(self.knots, dtype=torch.float64)
             B = _hat_basis(lam, knots).to(device=device, dtype=precision)     # (N, K)
             z = (B.unsqueeze(2) * xh.unsqueeze(1)).reshape(n, -1)              # (N, K C_in)
-            yh = _bilinear(torch.matmul, z, self.weight.reshape(-1, self.out_channels))
-        out = _bilinear(torch.matmul, U, yh)
+            yh = bilinear(torch.matmul, z, self.weight.reshape(-1, self.out_channels))
+        out = bilinear(torch.matmul, U, yh)
         return out if self.bias is None else out + self.bias

@@ -11,19 +11,8 @@ from torch import nn
 
 from ..errors import GraphInputError
 from ..operators import _check_phase, magnetic_laplacian
-from .filters import (
-    _COMPLEX_OF,
-    _add_bias,
-    _check_count,
-    _check_features,
-    _check_graph_like,
-    _chebyshev_sum,
-    _complex_view,
-    _empty_output,
-    _make_chebyshev_parameters,
-    _real_factory_dtype,
-    _reset_chebyshev_parameters,
-)
+from ._chebyshev import ChebyshevBase
+from ._layer import COMPLEX_OF, check_features, check_graph_like, empty_output
 
 __all__ = ["MagneticFilter", "LearnedCharge"]
 
@@ -104,7 +93,7 @@ def _as_list(values: torch.Tensor) -> list:
     return [float(v) for v in values.detach().reshape(-1).cpu().tolist()]
 
 
-class MagneticFilter(nn.Module):
+class MagneticFilter(ChebyshevBase):
     r"""Chebyshev filter on the normalized magnetic Laplacian: :math:`Y = \sum_k T_k(L(q) - I) X W_k + b`.
 
     :math:`L(q) = I - D^{-1/2} H(q) D^{-1/2}` with :math:`H(q) = A_s \odot e^{i 2\pi q (A - A^T)}`
@@ -190,10 +179,8 @@ class MagneticFilter(nn.Module):
                  charge: Union[float, Sequence[float], LearnedCharge],
                  bias: bool = True, complex_weights: bool = False, phase: str = "difference",
                  device=None, dtype=None):
-        super().__init__()
-        self.in_channels = _check_count("in_channels", in_channels)
-        self.out_channels = _check_count("out_channels", out_channels)
-        self.order = _check_count("order", order, minimum=0)
+        super().__init__(in_channels, out_channels, order, bias=bias, complex_weights=complex_weights,
+                         device=device, dtype=dtype)
         if isinstance(charge, LearnedCharge):
             self.learns_charge = True
             self.initial_charge, self._scalar_charge = charge.start, charge._scalar
@@ -207,20 +194,18 @@ class MagneticFilter(nn.Module):
                 f"gets out_channels // {groups} channels; got out_channels = {self.out_channels}"
             )
         self.phase = _check_phase(phase)
-        self.complex_weights = bool(complex_weights)
-        factory = {"device": device, "dtype": _real_factory_dtype(dtype)}
-        _make_chebyshev_parameters(self, bias, factory)
         if self.learns_charge:
-            self.charge_logit = nn.Parameter(torch.empty(groups, **factory))
+            self.charge_logit = nn.Parameter(torch.empty(groups, dtype=self.weight.dtype, device=self.weight.device))
         else:
             # saved with the weights so a state_dict cannot be loaded into a layer of other charges;
             # the Python floats in initial_charge stay the values used
-            self.register_buffer("fixed_charge", torch.tensor(self.initial_charge, dtype=torch.float64, device=device))
+            self.register_buffer("fixed_charge", torch.tensor(self.initial_charge, dtype=torch.float64,
+                                                              device=self.weight.device))
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
         """Weights U(-s, s), s = 1 / sqrt((order + 1) in_channels); charge logits logit(2 q_0)."""
-        _reset_chebyshev_parameters(self)
+        super().reset_parameters()
         with torch.no_grad():
             if self.learns_charge:
                 start = torch.tensor(self.initial_charge, dtype=torch.float64)
@@ -295,21 +280,17 @@ class MagneticFilter(nn.Module):
         super()._load_from_state_dict(state_dict, prefix, local_metadata, strict, missing_keys, unexpected_keys,
                                       error_msgs)
 
-    def extra_repr(self) -> str:
+    def _repr_options(self):
         q = self.initial_charge[0] if self._scalar_charge else list(self.initial_charge)
-        if self.learns_charge:
+        if not self.learns_charge:
+            options = [f"charge={q}"]
+        else:
             now = self._current_charges()
             now = f"{now[0]:.4g}" if self._scalar_charge else "[" + ", ".join(f"{v:.4g}" for v in now) + "]"
-            s = f"{self.in_channels}, {self.out_channels}, order={self.order}, charge={LearnedCharge(q)!r}, charge_now={now}"
-        else:
-            s = f"{self.in_channels}, {self.out_channels}, order={self.order}, charge={q}"
-        if self.bias is None:
-            s += ", bias=False"
-        if self.complex_weights:
-            s += ", complex_weights=True"
+            options = [f"charge={LearnedCharge(q)!r}", f"charge_now={now}"]
         if self.phase != "difference":
-            s += f", phase={self.phase!r}"
-        return s
+            options.append(f"phase={self.phase!r}")
+        return options
 
     def forward(self, x: torch.Tensor, graph) -> torch.Tensor:
         """Filter ``x`` (graph.num_rows, C_in) on ``graph``; returns (graph.num_rows, C_out) complex.
@@ -318,30 +299,22 @@ class MagneticFilter(nn.Module):
         ``num_nodes``, ``num_rows``, ``operator(builder, **options)`` and
         ``magnetic_product(charge, phase=...)``, such as a shard of a distributed graph).
         """
-        graph = _check_graph_like(graph, "MagneticFilter",
-                                  ("num_nodes", "num_rows", "operator", "magnetic_product"))
+        graph = check_graph_like(graph, "MagneticFilter", ("num_nodes", "num_rows", "operator", "magnetic_product"))
         precision, device = self.weight.dtype, self.weight.device
-        x = _check_features(x, graph.num_rows, self.in_channels, precision, device)
-        cdtype = _COMPLEX_OF[precision]
+        x = check_features(x, graph.num_rows, self.in_channels, precision, device)
+        cdtype = COMPLEX_OF[precision]
         if not x.is_complex():
             x = x.to(cdtype)
         if graph.num_nodes == 0:
-            return _empty_output(x, self.out_channels, cdtype, self.parameters())
-        w = _complex_view(self.weight) if self.complex_weights else self.weight
-        width = self.out_channels // self.num_charges
-        charges = self.charge.reshape(-1) if self.learns_charge else self.initial_charge
-        groups = []
-        for g in range(self.num_charges):
-            wg = w[:, :, g * width:(g + 1) * width]
+            return empty_output(x, self.out_channels, cdtype, self.parameters())
+        products = []
+        for q in (self.charge.reshape(-1) if self.learns_charge else self.initial_charge):
             if self.learns_charge:
                 # values built once per charge and forward, shared by the K products
-                product = graph.magnetic_product(charges[g], phase=self.phase)
+                product = graph.magnetic_product(q, phase=self.phase)
             else:
-                product = graph.operator(magnetic_laplacian, charge=charges[g], normalized=True, phase=self.phase,
+                product = graph.operator(magnetic_laplacian, charge=q, normalized=True, phase=self.phase,
                                          dtype=cdtype, device=device).matmul
             # L~ = L(q) - I: max_eigenvalue = 2 for the normalized magnetic Laplacian
-            groups.append(_chebyshev_sum(x, product, 1.0, -1.0, wg))
-        out = groups[0] if len(groups) == 1 else torch.cat(groups, dim=1)
-        if self.bias is None:
-            return out
-        return _add_bias(out, _complex_view(self.bias) if self.complex_weights else self.bias)
+            products.append((product, 1.0, -1.0))
+        return self._filter(x, products)

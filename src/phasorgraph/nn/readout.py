@@ -2,7 +2,6 @@ r"""Graph-level statistics of node features: mean, variance and standardized mom
 
 from __future__ import annotations
 
-import numbers
 from typing import Optional
 
 import torch
@@ -10,6 +9,7 @@ from torch import nn
 
 from ..errors import GraphInputError
 from ..segments import check_segments, segment_max, segment_mean
+from ._layer import check_count
 
 __all__ = ["MomentReadout"]
 
@@ -63,9 +63,7 @@ class MomentReadout(nn.Module):
 
     def __init__(self, moments: int = 4, normalized: bool = True):
         super().__init__()
-        if isinstance(moments, bool) or not isinstance(moments, numbers.Integral) or moments < 1:
-            raise GraphInputError(f"moments must be an integer >= 1; got {moments!r}")
-        self.moments = int(moments)
+        self.moments = check_count("moments", moments)
         self.normalized = bool(normalized)
 
     def forward(self, x: torch.Tensor, graph_index: Optional[torch.Tensor] = None,

@@ -16,8 +16,8 @@ from torch import nn
 
 from ..errors import GraphInputError
 from ..sparse import SparseOperator
-from .wavelets import (_check_diffusion_operator, _check_node_features, _check_scales, _diffusion_powers,
-                       _dyadic_bands)
+from ._diffusion import check_diffusion_operator, diffusion_powers, dyadic_bands
+from ._layer import check_count, check_features
 
 __all__ = ["DiffusionScattering"]
 
@@ -100,17 +100,12 @@ class DiffusionScattering(nn.Module):
     def __init__(self, in_channels: int, scales: int, order: int = 1, out_channels: Optional[int] = None,
                  bias: bool = True, lowpass: bool = True, *, device=None, dtype=None):
         super().__init__()
-        if isinstance(in_channels, bool) or not isinstance(in_channels, numbers.Integral) or in_channels < 1:
-            raise GraphInputError(f"in_channels must be an integer >= 1; got {in_channels!r}")
-        self.in_channels = int(in_channels)
-        self.scales = _check_scales(scales)
+        self.in_channels = check_count("in_channels", in_channels)
+        self.scales = check_count("scales", scales)
         if isinstance(order, bool) or not isinstance(order, numbers.Integral) or order not in (1, 2):
             raise GraphInputError(f"order must be 1 or 2; got {order!r}")
         self.order = int(order)
-        if out_channels is not None and (isinstance(out_channels, bool) or not isinstance(out_channels, numbers.Integral)
-                                         or out_channels < 1):
-            raise GraphInputError(f"out_channels must be None or an integer >= 1; got {out_channels!r}")
-        self.out_channels = None if out_channels is None else int(out_channels)
+        self.out_channels = check_count("out_channels", out_channels, optional=True)
         self.lowpass = bool(lowpass)
         J = self.scales
         self.paths = [()] + [(j,) for j in range(J + 1)]
@@ -144,30 +139,30 @@ class DiffusionScattering(nn.Module):
 
     def coefficients(self, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
         """The unmixed coefficients, (N, K, F) real, in the order of ``paths``."""
-        T, scale = _check_diffusion_operator(op)
-        x = _check_node_features(x, T.num_rows, in_channels=self.in_channels)
+        T, scale = check_diffusion_operator(op)
+        x = check_features(x, T.num_rows, self.in_channels, shape="(N, F)", restate_shape=False)
         J, n, F = self.scales, x.shape[0], x.shape[1]
-        first = _dyadic_bands(T, scale, x, J)  # (N, J + 2, F): Psi_0..Psi_J, Phi_J
+        first = dyadic_bands(T, scale, x, J)  # (N, J + 2, F): Psi_0..Psi_J, Phi_J
         zeroth = _real(first[:, -1] if self.lowpass else x)
         u1 = _modulus(first[:, :-1])  # (N, J + 1, F) real
         blocks = [zeroth.unsqueeze(1)]
         if self.order == 1:
             if self.lowpass:
-                (low,) = _diffusion_powers(T, scale, u1.reshape(n, (J + 1) * F), [2 ** J])
+                (low,) = diffusion_powers(T, scale, u1.reshape(n, (J + 1) * F), [2 ** J])
                 blocks.append(_real(low).reshape(n, J + 1, F))
             else:
                 blocks.append(u1)
             return torch.cat(blocks, dim=1)
         # order 2: one wavelet pass on the whole (N, width * F) block of first-order moduli
         width = J + 1 if self.lowpass else J  # |Psi_J x| has no j2 > J; keep it only for its low-pass
-        second = _dyadic_bands(T, scale, u1[:, :width].reshape(n, width * F), J).reshape(n, J + 2, width, F)
+        second = dyadic_bands(T, scale, u1[:, :width].reshape(n, width * F), J).reshape(n, J + 2, width, F)
         pairs_j1 = [j1 for j1 in range(J + 1) for j2 in range(j1 + 1, J + 1)]
         pairs_j2 = [j2 for j1 in range(J + 1) for j2 in range(j1 + 1, J + 1)]
         u2 = _modulus(second[:, pairs_j2, pairs_j1])  # (N, P, F), P = J (J + 1) / 2
         P = len(pairs_j1)
         if self.lowpass:
             blocks.append(_real(second[:, -1]))  # Phi_J |Psi_j x|, j = 0..J, from the same pass
-            (low2,) = _diffusion_powers(T, scale, u2.reshape(n, P * F), [2 ** J])
+            (low2,) = diffusion_powers(T, scale, u2.reshape(n, P * F), [2 ** J])
             blocks.append(_real(low2).reshape(n, P, F))
         else:
             blocks.append(u1)

@@ -1,0 +1,241 @@
+r"""Machinery every layer shares: argument checks, factory dtypes, parameters, bias, empty graphs.
+
+Private to :mod:`phasorgraph.nn` (the names carry no underscore so the layer modules can import
+them; nothing here is part of the public API). One helper per check, so a message reads the same
+in every layer.
+"""
+
+from __future__ import annotations
+
+import math
+import numbers
+from typing import Callable, Optional
+
+import torch
+from torch import nn
+from torch.autograd.function import once_differentiable
+
+from ..errors import GraphInputError
+
+REAL = (torch.float32, torch.float64)
+COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
+REAL_OF = {torch.complex64: torch.float32, torch.complex128: torch.float64,
+           torch.float32: torch.float32, torch.float64: torch.float64}
+
+#: what every graph-like object answers (a DirectedGraph, or a shard of a distributed graph)
+GRAPH_LIKE = ("num_nodes", "num_rows", "operator")
+
+
+# ---------------------------------------------------------------------- argument checks
+def check_count(name: str, value, minimum: int = 1, *, optional: bool = False) -> Optional[int]:
+    """An integer >= minimum (bools refused); None passes when ``optional``."""
+    if optional and value is None:
+        return None
+    rule = f"None or an integer >= {minimum}" if optional else f"an integer >= {minimum}"
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise GraphInputError(f"{name} must be {rule}; got {value!r}")
+    if int(value) < minimum:
+        raise GraphInputError(f"{name} must be {rule}; got {int(value)}")
+    return int(value)
+
+
+def real_factory_dtype(dtype) -> Optional[torch.dtype]:
+    """The real parameter dtype for factory kwargs (a complex dtype selects its precision)."""
+    if dtype is None:
+        return None
+    if dtype not in REAL_OF:
+        raise GraphInputError(
+            f"dtype must be torch.float32 or torch.float64 (or complex64/complex128 for that "
+            f"precision); got {dtype}"
+        )
+    return REAL_OF[dtype]
+
+
+def factory_kwargs(device, dtype) -> dict:
+    """``{"device": device, "dtype": real dtype}`` for every parameter of a layer."""
+    return {"device": device, "dtype": real_factory_dtype(dtype)}
+
+
+def check_features(x, num_rows: int, in_channels: Optional[int] = None, precision: Optional[torch.dtype] = None,
+                   device=None, *, name: str = "x", shape: str = "(N, C_in)", restate_shape: bool = True
+                   ) -> torch.Tensor:
+    """Validate node features: a 2-D tensor with ``num_rows`` rows (and ``in_channels`` columns,
+    the layer's precision and device when given).
+
+    ``num_rows`` is the graph-like object's (or operator's) ``num_rows``: all nodes of a whole
+    graph, the owned rows of a shard.
+    """
+    if not isinstance(x, torch.Tensor):
+        raise GraphInputError(f"{name} must be a torch.Tensor of shape {shape}; got {type(x).__name__}")
+    if x.dim() != 2:
+        raise GraphInputError(f"{name} must have shape {shape} (2-D); got shape {tuple(x.shape)}")
+    again = f" (shape {shape})" if restate_shape else ""
+    if x.shape[0] != num_rows:
+        raise GraphInputError(f"{name} must have num_nodes = {num_rows} rows{again}; got shape {tuple(x.shape)}")
+    if in_channels is not None and x.shape[1] != in_channels:
+        raise GraphInputError(
+            f"{name} must have in_channels = {in_channels} columns{again}; got shape {tuple(x.shape)}"
+        )
+    if precision is not None:
+        if x.dtype not in REAL_OF:
+            raise GraphInputError(f"{name} dtype must be float32, float64, complex64 or complex128; got {x.dtype}")
+        if REAL_OF[x.dtype] != precision:
+            raise GraphInputError(
+                f"{name} has dtype {x.dtype} but the layer's parameters are {precision}; use the same "
+                f"precision (layer.to({precision}) or x.to(...))"
+            )
+    if device is not None and x.device != device:
+        raise GraphInputError(f"{name} is on {x.device} but the layer's parameters are on {device}; move one of them")
+    return x
+
+
+def check_operator(op, precision: torch.dtype, device, *, layer: str):
+    """A SparseOperator (anything with ``matmul`` and the operator facts) of the layer's precision and device."""
+    if not all(hasattr(op, a) for a in ("matmul", "dtype", "device", "num_rows", "hermitian")):
+        raise GraphInputError(f"op must be a SparseOperator; got {type(op).__name__}")
+    if REAL_OF[op.dtype] != precision:
+        raise GraphInputError(
+            f"op has dtype {op.dtype} but {layer}'s parameters are {precision}; use op.to(...) or "
+            f"layer.to(...) so the precisions match"
+        )
+    if op.device != device:
+        raise GraphInputError(f"op is on {op.device} but {layer}'s parameters are on {device}; move one of them")
+    return op
+
+
+def check_graph_like(graph, layer: str, needs: tuple = GRAPH_LIKE):
+    """A DirectedGraph or any object answering the graph-like protocol (no isinstance on types).
+
+    The protocol: ``num_nodes`` (nodes of the whole graph), ``num_rows`` (rows of x held here),
+    ``operator(builder, device=..., **options)`` and, for a learned charge,
+    ``magnetic_product(charge, phase=...)``.
+    """
+    missing = [name for name in needs if not hasattr(graph, name)]
+    if missing:
+        raise GraphInputError(
+            f"graph must be a DirectedGraph (or a graph-like object with {', '.join(needs)}, such as a shard "
+            f"of a distributed graph) for {layer}; got {type(graph).__name__}, which lacks {', '.join(missing)}"
+        )
+    return graph
+
+
+# ---------------------------------------------------------------------- parameters
+def init_uniform_(tensor: torch.Tensor, bound: float) -> torch.Tensor:
+    """Real weights: i.i.d. U(-bound, bound), in place (variance bound^2 / 3)."""
+    with torch.no_grad():
+        return tensor.uniform_(-bound, bound)
+
+
+def init_complex_uniform_(pairs: torch.Tensor, bound: float) -> torch.Tensor:
+    r"""Complex weights stored as real pairs (..., 2): real and imaginary parts i.i.d. U(-a, a).
+
+    :math:`a = \mathrm{bound} / \sqrt 2`, so :math:`E|w|^2 = \mathrm{bound}^2 / 3`: the same
+    second moment as the real initialization :func:`init_uniform_` with the same bound.
+    """
+    with torch.no_grad():
+        a = bound / math.sqrt(2.0)
+        return pairs.uniform_(-a, a)
+
+
+def make_parameters(module: nn.Module, weight_shape: tuple, bias: bool, factory: dict,
+                    complex_pairs: bool = False) -> None:
+    """Register ``weight`` of ``weight_shape`` and ``bias`` (C_out,) or None; a trailing axis of 2
+    holds (real, imaginary) pairs when ``complex_pairs``."""
+    pair = (2,) if complex_pairs else ()
+    module.weight = nn.Parameter(torch.empty(tuple(weight_shape) + pair, **factory))
+    if bias:
+        module.bias = nn.Parameter(torch.empty((module.out_channels,) + pair, **factory))
+    else:
+        module.register_parameter("bias", None)
+
+
+def reset_uniform(module: nn.Module, bound: float, complex_pairs: bool = False) -> None:
+    """U(-bound, bound) for weight and bias (complex pairs: :func:`init_complex_uniform_`),
+    in place under ``torch.no_grad()``."""
+    init = init_complex_uniform_ if complex_pairs else init_uniform_
+    with torch.no_grad():
+        init(module.weight, bound)
+        if module.bias is not None:
+            init(module.bias, bound)
+
+
+def complex_view(weight: torch.Tensor) -> torch.Tensor:
+    """Complex tensor from real pairs (..., 2)."""
+    return torch.view_as_complex(weight)
+
+
+# ---------------------------------------------------------------------- outputs
+def empty_output(x: torch.Tensor, out_channels: int, dtype: torch.dtype, params) -> torch.Tensor:
+    """The (0, C_out) output of a graph without nodes, still attached to the parameters' graph.
+
+    (A zero-row product is answered here rather than handed to the sparse kernels.) Layers take
+    this shortcut only when the whole graph is empty (``num_nodes == 0``): a shard holding no
+    rows of a non-empty graph still joins every product.
+    """
+    anchor = sum(p.sum() * 0 for p in params) + x.sum() * 0
+    return torch.zeros(0, out_channels, dtype=dtype, device=x.device) + anchor
+
+
+def output_dtype(*tensors_or_ops) -> torch.dtype:
+    """Complex of the precision of the first tensor when any argument is complex, else that real dtype."""
+    cplx = any(t.is_complex() if isinstance(t, torch.Tensor) else t.is_complex for t in tensors_or_ops)
+    real = next(t.dtype for t in tensors_or_ops if isinstance(t, torch.Tensor))
+    real = REAL_OF[real]
+    return COMPLEX_OF[real] if cplx else real
+
+
+def add_bias(out: torch.Tensor, bias: Optional[torch.Tensor]) -> torch.Tensor:
+    """``out + bias``, in place when the dtypes allow (out is always a fresh, non-view tensor here)."""
+    if bias is None:
+        return out
+    if torch.promote_types(out.dtype, bias.dtype) == out.dtype:
+        return out.add_(bias)
+    return out + bias
+
+
+# ---------------------------------------------------------------------- real and complex products
+def bilinear(f: Callable, a: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+    """``f(a, b)`` for a bilinear ``f`` when a and b may differ in being real or complex.
+
+    A real factor never gets cast to complex: ``f(a_re, b) + i f(a_im, b)`` instead.
+    """
+    if a.is_complex() == b.is_complex():
+        return f(a, b)
+    if a.is_complex():
+        return torch.complex(f(a.real, b), f(a.imag, b))
+    return torch.complex(f(a, b.real), f(a, b.imag))
+
+
+class _ComplexRealMatmul(torch.autograd.Function):
+    """``t @ w`` for complex t (N, C) and real w (C, O), the weight never cast to complex.
+
+    Forward ``Re(t) w + i Im(t) w``; backward ``g w^T`` for t (complex) and
+    ``Re(t)^T Re(g) + Im(t)^T Im(g)`` for w, so no zero-filled complex gradient blocks are built
+    for the real and imaginary views.
+    """
+
+    @staticmethod
+    def forward(ctx, t, w):
+        ctx.save_for_backward(t, w)
+        return torch.complex(t.real @ w, t.imag @ w)
+
+    @staticmethod
+    @once_differentiable
+    def backward(ctx, g):
+        t, w = ctx.saved_tensors
+        grad_t = grad_w = None
+        if ctx.needs_input_grad[0]:
+            wt = w.T
+            grad_t = torch.complex(g.real @ wt, g.imag @ wt)
+        if ctx.needs_input_grad[1]:
+            grad_w = t.real.T @ g.real + t.imag.T @ g.imag
+        return grad_t, grad_w
+
+
+def mix(t: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
+    """``t @ w`` for real or complex t and w (a real factor is never cast to complex)."""
+    if t.is_complex() and not w.is_complex():
+        return _ComplexRealMatmul.apply(t, w)
+    if w.is_complex() and not t.is_complex():
+        return t.to(w.dtype) @ w
+    return t @ w
