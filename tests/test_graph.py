@@ -323,3 +323,21 @@ def test_operator_refuses_unhashable_options_and_non_functions():
         g.operator(magnetic_laplacian, charge=[0.1])
     with pytest.raises(GraphInputError, match=r"builder must be a function graph -> operator; got str"):
         g.operator("magnetic_laplacian")
+
+
+@pytest.mark.parametrize("layout", ["dense", "coo", "csr", "csc"])
+def test_from_scipy_accepts_torch_tensors(layout):
+    # reference: scipy.sparse.coo_matrix of the same dense numpy array (issue 12: a torch sparse
+    # tensor used to raise numpy's TypeError)
+    dense = torch.tensor([[0.0, 2.0, 0.0], [0.0, 0.0, 3.0], [1.0, 0.0, 0.5]])
+    m = {"dense": dense, "coo": dense.to_sparse(), "csr": dense.to_sparse_csr(),
+         "csc": dense.to_sparse_csc()}[layout]
+    g = DirectedGraph.from_scipy(m)
+    ref = sp.coo_matrix(dense.numpy())
+    assert g == DirectedGraph(ref.row, ref.col, ref.data, 3)
+
+
+def test_subgraph_edges_accepts_boolean_lists_and_arrays():
+    g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+    for keep in ([True, False, True], np.array([True, False, True])):
+        assert g.subgraph_edges(keep).target.tolist() == [1, 0]

@@ -145,10 +145,37 @@ def test_link_split_is_seeded(full_graph):
     assert torch.equal(a.train.pairs, b.train.pairs) and not torch.equal(a.test.pairs, c.test.pairs)
 
 
-def test_link_split_of_an_edgeless_graph_is_empty():
+def test_link_split_of_an_edgeless_graph_is_refused():
+    # refused, not an empty split (issue 12: an empty split must never come back without a word)
     g = DirectedGraph.from_edges(torch.empty(2, 0, dtype=torch.int64), num_nodes=4)
-    s = split_links(g, "existence", 0.2, 0.2, seed=0)
-    assert len(s.train) == len(s.val) == len(s.test) == 0 and s.train.pairs.shape == (2, 0)
+    with pytest.raises(GraphInputError, match=r"graph has no link between distinct nodes"):
+        split_links(g, "existence", 0.2, 0.2, seed=0)
+
+
+def test_link_split_with_zero_fractions_keeps_every_link_for_training():
+    # asking for no val / test links is allowed and gives empty val / test splits
+    g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 3]])
+    s = split_links(g, "direction", 0.0, 0.0, seed=0)
+    assert len(s.val) == len(s.test) == 0 and len(s.train) == 2 * 3
+
+
+def test_direction_split_of_a_graph_with_only_reciprocal_links_is_refused():
+    g = DirectedGraph.from_edges([[0, 1, 1, 2], [1, 0, 2, 1]])
+    with pytest.raises(GraphInputError, match=r"graph has no one-way link, so the direction question has "
+                                              r"nothing to split: 2 reciprocal links"):
+        split_links(g, "direction", 0.1, 0.1, seed=0)
+
+
+@pytest.mark.parametrize("task", ["existence", "direction"])
+def test_link_split_fraction_that_rounds_to_no_link_is_refused(task):
+    g = DirectedGraph.from_edges([[0, 1, 2, 4], [1, 2, 3, 5]], num_nodes=8)  # 4 one-way links
+    with pytest.raises(GraphInputError, match=r"val_fraction = 0\.1 of the 4 eligible links rounds to 0 links; "
+                                              r"raise val_fraction to at least 0\.125"):
+        split_links(g, task, 0.1, 0.3, seed=0)
+    with pytest.raises(GraphInputError, match=r"test_fraction = 0\.05 of the 4 eligible links rounds to 0"):
+        split_links(g, task, 0.3, 0.05, seed=0)
+    with pytest.raises(GraphInputError, match=r"take all 4 eligible links after rounding"):
+        split_links(g, task, 0.45, 0.45, seed=0)
 
 
 @pytest.mark.parametrize(
@@ -185,8 +212,21 @@ def test_property_no_held_out_pair_reaches_the_training_graph(graph, task, seed)
     # generated graphs with isolated nodes, self-loops, duplicates and reciprocal edges
     try:
         s = split_links(graph, task, 0.3, 0.3, seed=seed)
-    except GraphInputError as err:  # too dense for balanced negatives is the one allowed refusal
-        assert task == "existence" and "non-adjacent node pairs" in str(err)
+    except GraphInputError as err:
+        # the allowed refusals: too dense for balanced negatives, or a split that would be empty
+        message = str(err)
+        links = {(min(u, v), max(u, v)) for u, v in zip(graph.source.tolist(), graph.target.tolist()) if u != v}
+        one_way = {(u, v) for u, v in links if not ((u, v) in set(zip(graph.source.tolist(), graph.target.tolist()))
+                                                    and (v, u) in set(zip(graph.source.tolist(), graph.target.tolist())))}
+        eligible = len(links) if task == "existence" else len(one_way)
+        if "non-adjacent node pairs" in message:
+            assert task == "existence"
+        elif "rounds to 0 links" in message:
+            assert round(0.3 * eligible) == 0 < eligible
+        elif "nothing to split" in message or "no link between distinct nodes" in message:
+            assert eligible == 0
+        else:
+            assert "leaving none for training" in message and 2 * round(0.3 * eligible) >= eligible
         return
     train = set(zip(s.train_graph.source.tolist(), s.train_graph.target.tolist()))
     full = set(zip(graph.source.tolist(), graph.target.tolist()))

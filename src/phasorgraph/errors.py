@@ -10,3 +10,9 @@ class GraphInputError(ValueError):
     ``"source holds node 12 but num_nodes is 10"``. It subclasses :class:`ValueError`, so
     code that already catches ``ValueError`` keeps working.
     """
+
+
+def _value_text(value, limit: int = 80) -> str:
+    """``repr(value)`` shortened to ``limit`` characters: how messages show the value given."""
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit - 3] + "..."

@@ -9,57 +9,130 @@ import numpy as np
 import scipy.sparse as sp
 import torch
 
-from .errors import GraphInputError
+from ._limits import check_node_count
+from .errors import GraphInputError, _value_text
 
 __all__ = ["DirectedGraph"]
 
 
+_ID_LIMIT = 2 ** 63  # node ids are stored as int64
+
+
+def _check_has_values(name: str, t: torch.Tensor) -> None:
+    """Refuse tensors whose values cannot be read (the meta device)."""
+    if t.device.type == "meta":
+        raise GraphInputError(
+            f"{name} is on the meta device, which holds shapes but no values; pass a tensor with "
+            f"values (on cpu or an accelerator)"
+        )
+
+
+def _check_tensor_storage(name: str, t: torch.Tensor) -> None:
+    """Refuse tensors whose values cannot be read: meta device, sparse layouts."""
+    _check_has_values(name, t)
+    if t.layout != torch.strided:
+        raise GraphInputError(f"{name} must be a dense tensor; got layout {t.layout}")
+
+
+def _as_array(name: str, value: Any, what: str) -> np.ndarray:
+    """``np.asarray(value)``, turning numpy's errors on ragged or odd input into GraphInputError."""
+    try:
+        return np.asarray(value)
+    except (ValueError, TypeError, OverflowError) as exc:
+        raise GraphInputError(
+            f"{name} must be {what}; got a {type(value).__name__} that numpy cannot read as one "
+            f"array (rows of different lengths?): {_value_text(value)}"
+        ) from exc
+
+
+def _first_bad_object(arr: np.ndarray, ok) -> tuple[int, Any]:
+    """Position and value of the first entry of an object array for which ``ok`` is false."""
+    flat = arr.reshape(-1)
+    for k, v in enumerate(flat):  # error path only
+        if not ok(v):
+            return k, v
+    return -1, None
+
+
+def _is_node_id(v: Any) -> bool:
+    return isinstance(v, numbers.Integral) and not isinstance(v, (bool, np.bool_)) and 0 <= int(v) < _ID_LIMIT
+
+
 def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
-    """Turn a 1-D array-like of node ids into an int64 CPU tensor, rejecting non-integers."""
+    """Turn a 1-D array-like of node ids into an int64 CPU tensor, rejecting non-integers.
+
+    Ids must be integers in [0, 2**63) (int64); floats are accepted when they hold integers.
+    Negative ids are reported by the caller (with the graph context); ids that int64 cannot
+    hold, from uint64 arrays, huge floats or Python ints, are reported here with the value given.
+    """
     if isinstance(value, torch.Tensor):
         t = value.detach()
+        _check_tensor_storage(name, t)
         if t.is_complex() or t.dtype == torch.bool:
             raise GraphInputError(f"{name} must hold integer node ids; got a tensor of dtype {t.dtype}")
         if t.is_floating_point():
-            bad = ~torch.isfinite(t) | (t != torch.round(t))
-            if bool(bad.any()):
-                k = int(torch.nonzero(bad.reshape(-1))[0])
-                raise GraphInputError(
-                    f"{name} must hold integer node ids; got the non-integer value "
-                    f"{float(t.reshape(-1)[k])} at position {k} (dtype {t.dtype})"
-                )
-        t = t.to(device="cpu", dtype=torch.int64)
+            arr = t.to(device="cpu", dtype=torch.float64).numpy()
+        elif t.dtype == torch.uint64:  # may hold ids that int64 cannot
+            arr = t.to(device="cpu").numpy()
+        else:
+            t = t.to(device="cpu", dtype=torch.int64)
+            if t.dim() != 1:
+                raise GraphInputError(f"{name} must be 1-D; got shape {tuple(t.shape)}")
+            return t.contiguous()
     else:
-        try:
-            arr = np.asarray(value)
-        except Exception as exc:  # pragma: no cover - numpy raises many kinds
-            raise GraphInputError(f"{name} must be a 1-D array of integer node ids; got {type(value).__name__}") from exc
-        if arr.dtype == object or arr.dtype.kind not in "iuf" and arr.size > 0:
-            raise GraphInputError(f"{name} must hold integer node ids; got an array of dtype {arr.dtype}")
-        if arr.dtype.kind == "f":
-            bad = ~np.isfinite(arr) | (arr != np.round(arr))
-            if bad.any():
-                k = int(np.flatnonzero(bad)[0])
-                raise GraphInputError(
-                    f"{name} must hold integer node ids; got the non-integer value "
-                    f"{arr.reshape(-1)[k]} at position {k} (dtype {arr.dtype})"
-                )
-        t = torch.as_tensor(arr.astype(np.int64, copy=False))
-    if t.dim() != 1:
-        raise GraphInputError(f"{name} must be 1-D; got shape {tuple(t.shape)}")
-    return t.contiguous()
+        arr = _as_array(name, value, "a 1-D array of integer node ids")
+    if arr.dtype == object:
+        k, v = _first_bad_object(arr, _is_node_id)
+        if k >= 0:
+            raise GraphInputError(
+                f"{name} must hold integer node ids in [0, 2**63); got {_value_text(v)} at position {k}"
+            )
+        arr = arr.astype(np.int64)
+    if arr.dtype.kind not in "iuf" and arr.size > 0:
+        raise GraphInputError(f"{name} must hold integer node ids; got an array of dtype {arr.dtype}")
+    if arr.dtype.kind == "f":
+        bad = ~np.isfinite(arr) | (arr != np.round(arr))
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise GraphInputError(
+                f"{name} must hold integer node ids; got the non-integer value "
+                f"{arr.reshape(-1)[k]} at position {k} (dtype {arr.dtype})"
+            )
+    if arr.size and arr.dtype.kind in "uf":
+        big = arr >= _ID_LIMIT
+        if big.any():
+            k = int(np.flatnonzero(big.reshape(-1))[0])
+            raise GraphInputError(
+                f"{name} holds node {int(arr.reshape(-1)[k])} at position {k}; node ids must be "
+                f"integers in [0, 2**63) (int64)"
+            )
+    if arr.ndim != 1:
+        raise GraphInputError(f"{name} must be 1-D; got shape {tuple(arr.shape)}")
+    # floats below -2**63 would wrap; they are negative anyway, so clip to keep the sign
+    if arr.dtype.kind == "f":
+        arr = np.clip(arr, -float(_ID_LIMIT), None)
+    return torch.as_tensor(arr.astype(np.int64, copy=False)).contiguous()
 
 
 def _as_weight_tensor(value: Any, num_edges: int) -> torch.Tensor:
     if value is None:
         return torch.ones(num_edges, dtype=torch.float64)
     if isinstance(value, torch.Tensor):
+        _check_tensor_storage("weight", value)
         if value.is_complex():
             raise GraphInputError(f"weight must be real; got a tensor of dtype {value.dtype}")
         w = value.detach().to(device="cpu", dtype=torch.float64)
     else:
-        arr = np.asarray(value)
-        if arr.dtype == object or (arr.dtype.kind not in "iufb" and arr.size > 0):
+        arr = _as_array("weight", value, "real numbers, one per edge")
+        if arr.dtype == object:
+            k, v = _first_bad_object(
+                arr, lambda v: isinstance(v, numbers.Real) and not isinstance(v, (bool, np.bool_)))
+            raise GraphInputError(
+                f"weight must hold real numbers, one per edge; got {_value_text(v)} at position {k}"
+            )
+        if arr.dtype.kind == "c":
+            raise GraphInputError(f"weight must be real; got an array of dtype {arr.dtype}")
+        if arr.dtype.kind not in "iufb" and arr.size > 0:
             raise GraphInputError(f"weight must hold real numbers; got an array of dtype {arr.dtype}")
         w = torch.as_tensor(arr.astype(np.float64, copy=False))
     if w.dim() == 0:
@@ -95,6 +168,32 @@ def _hashable(value: Any) -> bool:
     except TypeError:
         return False
     return True
+
+
+def _torch_matrix_to_scipy(matrix: torch.Tensor):
+    """A torch matrix (dense or sparse COO / CSR / CSC) as a scipy COO matrix or numpy array."""
+    _check_has_values("matrix", matrix)
+    m = matrix.detach().cpu()
+    if m.dim() != 2:
+        raise GraphInputError(f"matrix must be 2-D (square); got shape {tuple(m.shape)}")
+    if m.layout == torch.strided:
+        return m.resolve_conj().numpy() if m.dtype != torch.bfloat16 else m.double().numpy()
+    if m.layout == torch.sparse_csr:
+        return sp.csr_matrix((m.values().resolve_conj().numpy(), m.col_indices().numpy(), m.crow_indices().numpy()),
+                             shape=tuple(m.shape)).tocoo()
+    if m.layout == torch.sparse_csc:
+        return sp.csc_matrix((m.values().resolve_conj().numpy(), m.row_indices().numpy(), m.ccol_indices().numpy()),
+                             shape=tuple(m.shape)).tocoo()
+    if m.layout in (torch.sparse_bsr, torch.sparse_bsc):
+        m = m.to_sparse_coo()
+    if m.layout != torch.sparse_coo:  # pragma: no cover - future layouts
+        raise GraphInputError(f"matrix has layout {m.layout}; pass a dense or sparse COO / CSR / CSC tensor")
+    m = m.coalesce()
+    idx = m.indices().numpy()
+    vals = m.values()
+    if vals.dim() != 1:
+        raise GraphInputError(f"matrix must be a 2-D sparse matrix of scalars; got values of shape {tuple(vals.shape)}")
+    return sp.coo_matrix((vals.resolve_conj().numpy(), (idx[0], idx[1])), shape=tuple(m.shape))
 
 
 class DirectedGraph:
@@ -193,16 +292,32 @@ class DirectedGraph:
             s_, d_, w_ = s_[order], d_[order], w_[order]
             first = np.ones(s_.size, dtype=bool)
             first[1:] = (s_[1:] != s_[:-1]) | (d_[1:] != d_[:-1])
-            summed = np.bincount(np.cumsum(first) - 1, weights=w_)
+            with np.errstate(over="ignore", invalid="ignore"):
+                summed = np.bincount(np.cumsum(first) - 1, weights=w_)
             keep = summed != 0
-            return (torch.from_numpy(s_[first][keep].copy()), torch.from_numpy(d_[first][keep].copy()),
-                    torch.from_numpy(summed[keep].astype(np.float64)))
+            s_, d_, summed = s_[first][keep], d_[first][keep], summed[keep]
+            DirectedGraph._check_sums(s_, d_, summed)
+            return torch.from_numpy(s_.copy()), torch.from_numpy(d_.copy()), torch.from_numpy(summed.astype(np.float64))
         m = sp.csr_matrix((w.numpy(), (src.numpy(), dst.numpy())), shape=(n, n))
-        m.sum_duplicates()
+        with np.errstate(over="ignore", invalid="ignore"):
+            m.sum_duplicates()
         m.eliminate_zeros()
         rows = np.repeat(np.arange(n, dtype=np.int64), np.diff(m.indptr))
+        DirectedGraph._check_sums(rows, m.indices, m.data)
         return (torch.from_numpy(rows), torch.from_numpy(m.indices.astype(np.int64)),
                 torch.from_numpy(m.data.astype(np.float64, copy=False)))
+
+    @staticmethod
+    def _check_sums(rows: np.ndarray, cols: np.ndarray, summed: np.ndarray) -> None:
+        """Refuse duplicate edges whose weights sum past the float64 range (inf) or to NaN."""
+        bad = ~np.isfinite(summed)
+        if bad.any():
+            k = int(np.flatnonzero(bad)[0])
+            raise GraphInputError(
+                f"weight: the duplicate entries of edge {int(rows[k])} -> {int(cols[k])} sum to "
+                f"{summed[k]} (beyond the float64 range, about 1.8e308); every summed weight must be "
+                f"finite, so rescale the weights"
+            )
 
     # ------------------------------------------------------------------ properties
     @property
@@ -376,7 +491,7 @@ class DirectedGraph:
             if isinstance(edges, torch.Tensor):
                 shape = tuple(edges.shape)
             else:
-                edges = np.asarray(edges)
+                edges = _as_array("edges_or_source", edges, "a (2, E) array of (source, target) rows")
                 shape = edges.shape
             if len(shape) != 2 or shape[0] != 2:
                 hint = " (did you pass (E, 2)? transpose it)" if len(shape) == 2 and shape[1] == 2 else ""
@@ -391,17 +506,20 @@ class DirectedGraph:
         """Build from a square scipy sparse matrix or array (any format) or a dense 2-D array.
 
         Entry (u, v) is an edge u -> v of weight ``matrix[u, v]``. Repeated COO entries are
-        summed and stored zeros dropped, as for every DirectedGraph.
+        summed and stored zeros dropped, as for every DirectedGraph. A torch tensor is accepted
+        too: dense (strided) or sparse (COO, CSR, CSC), on any device but ``meta``.
 
         Example:
             >>> import numpy as np
             >>> DirectedGraph.from_scipy(np.array([[0.0, 2.0], [0.0, 1.0]])).weight.tolist()
             [2.0, 1.0]
         """
+        if isinstance(matrix, torch.Tensor):
+            matrix = _torch_matrix_to_scipy(matrix)
         if sp.issparse(matrix):
             coo = sp.coo_matrix(matrix)
         else:
-            arr = np.asarray(matrix)
+            arr = _as_array("matrix", matrix, "a square 2-D array or scipy sparse matrix")
             if arr.ndim != 2:
                 raise GraphInputError(f"matrix must be 2-D (square); got shape {arr.shape}")
             if arr.dtype == object or arr.dtype.kind not in "iufcb":
@@ -446,10 +564,14 @@ class DirectedGraph:
             rows.append(index[u]); cols.append(index[v]); vals.append(w)
             if not G.is_directed() and u != v:
                 rows.append(index[v]); cols.append(index[u]); vals.append(w)
-        try:
-            vals_arr = np.asarray(vals, dtype=np.float64)
-        except (TypeError, ValueError) as exc:
-            raise GraphInputError(f"edge attribute {weight!r} must be a real number on every edge") from exc
+        k = next((i for i, v in enumerate(vals) if not isinstance(v, numbers.Real)), None)
+        if k is not None:  # complex, None, text, ...: refused, never cast
+            u, v = list(G.nodes)[rows[k]], list(G.nodes)[cols[k]]
+            raise GraphInputError(
+                f"edge attribute {weight!r} must be a real number on every edge; edge ({u!r}, {v!r}) "
+                f"has {_value_text(vals[k])}"
+            )
+        vals_arr = np.asarray(vals, dtype=np.float64)
         bad = ~np.isfinite(vals_arr)
         if bad.any():
             k = int(np.flatnonzero(bad)[0])
@@ -477,6 +599,11 @@ class DirectedGraph:
     # ------------------------------------------------------------------ adapters out
     def to_scipy(self, format: str = "csr") -> sp.spmatrix:
         """The weighted adjacency A (N, N) as a scipy sparse matrix, A[u, v] = w(u -> v)."""
+        formats = ("csr", "csc", "coo", "lil", "dok", "bsr", "dia")
+        if format not in formats:
+            raise GraphInputError(f"format must be one of {formats} (scipy sparse formats); got {format!r}")
+        if format != "coo":
+            check_node_count(self.num_nodes, what=f"to_scipy({format!r})", bytes_per_node=16)
         coo = sp.coo_matrix(
             (self._weight.numpy(), (self._source.numpy(), self._target.numpy())),
             shape=(self.num_nodes, self.num_nodes),
@@ -487,6 +614,7 @@ class DirectedGraph:
         """A networkx ``DiGraph`` with nodes 0..N-1 and the ``weight`` edge attribute."""
         import networkx as nx
 
+        check_node_count(self.num_nodes, what="to_networkx", bytes_per_node=512)
         G = nx.DiGraph()
         G.add_nodes_from(range(self.num_nodes))
         G.add_weighted_edges_from(zip(self._source.tolist(), self._target.tolist(), self._weight.tolist()))
@@ -546,6 +674,7 @@ class DirectedGraph:
         n = self.num_nodes
         if n == 0:
             return self, torch.zeros(0, dtype=torch.int64)
+        check_node_count(n, what="locality_order")
         s, t = self._source.numpy(), self._target.numpy()
         ones = np.ones(2 * s.size, dtype=np.int8)
         pattern = sp.csr_matrix((ones, (np.concatenate([s, t]), np.concatenate([t, s]))), shape=(n, n))
@@ -556,8 +685,31 @@ class DirectedGraph:
         return self.permute(perm), perm
 
     def subgraph_edges(self, keep: torch.Tensor) -> "DirectedGraph":
-        """The graph with only the edges where the boolean mask ``keep`` (E,) is true."""
-        keep = torch.as_tensor(keep, dtype=torch.bool)
+        """The graph with only the edges where the boolean mask ``keep`` (E,) is true.
+
+        ``keep`` must have a boolean dtype (tensor, array or list of bools): an integer tensor
+        is refused rather than guessed at (is ``[1, 0, 2]`` a mask or edge indices?). To keep
+        edges by index ``idx``, pass ``mask = torch.zeros(E, dtype=torch.bool); mask[idx] = True``.
+
+        Example:
+            >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+            >>> g.subgraph_edges([True, False, True]).target.tolist()
+            [1, 0]
+        """
+        if isinstance(keep, torch.Tensor):
+            _check_tensor_storage("keep", keep)
+            keep = keep.detach().cpu()
+            dtype = keep.dtype
+        else:
+            keep = _as_array("keep", keep, "a boolean mask, one entry per edge")
+            dtype = keep.dtype
+            if keep.dtype == np.bool_:
+                keep = torch.from_numpy(np.ascontiguousarray(keep))
+        if dtype not in (torch.bool, np.bool_):
+            raise GraphInputError(
+                f"keep must be a boolean mask of shape ({self.num_edges},); got dtype {dtype} (to keep "
+                f"edges by index, set mask[index] = True in a torch.zeros({self.num_edges}, dtype=torch.bool))"
+            )
         if keep.shape != (self.num_edges,):
             raise GraphInputError(f"keep must be a boolean mask of shape ({self.num_edges},); got {tuple(keep.shape)}")
         return DirectedGraph(self._source[keep], self._target[keep], self._weight[keep], self.num_nodes,

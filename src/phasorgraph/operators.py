@@ -26,6 +26,7 @@ import numpy as np
 import scipy.sparse as sp
 import torch
 
+from ._limits import check_node_count
 from .errors import GraphInputError
 from .graph import DirectedGraph
 from .sparse import SparseOperator, csr_matrix, values_matmul
@@ -53,12 +54,13 @@ _TO_COMPLEX = {torch.float32: torch.complex64, torch.float64: torch.complex128}
 
 
 # ---------------------------------------------------------------------- validation
-def _check_graph(graph) -> DirectedGraph:
+def _check_graph(graph, what: str = "this operator") -> DirectedGraph:
     if not isinstance(graph, DirectedGraph):
         raise GraphInputError(
             f"graph must be a DirectedGraph (build one with DirectedGraph.from_edges, from_scipy or "
             f"from_networkx); got {type(graph).__name__}"
         )
+    check_node_count(graph.num_nodes, what=what)
     smallest = graph._cache.get("min_weight")
     if smallest is None:  # weights are immutable: check once per graph
         smallest = float(graph.weight.numpy().min()) if graph.num_edges else 0.0
@@ -82,8 +84,9 @@ def _check_charge(charge) -> float:
             )
         charge = float(charge)
     if isinstance(charge, bool) or not isinstance(charge, numbers.Real):
+        text = repr(charge) if len(repr(charge)) <= 40 else repr(charge)[:37] + "..."
         raise GraphInputError(
-            f"charge must be a real number in [0, 0.5]; got {type(charge).__name__} "
+            f"charge must be a real number in [0, 0.5]; got {type(charge).__name__} {text} "
             f"(for a learned charge use magnetic_matmul with a tensor)"
         )
     q = float(charge)
@@ -151,10 +154,28 @@ def _parts(graph: DirectedGraph):
     sym = a + b
     sym *= 0.5
     degree = np.bincount(rows, weights=sym, minlength=n)
+    if not np.all(np.isfinite(degree)):
+        k = int(np.flatnonzero(~np.isfinite(degree))[0])
+        raise GraphInputError(
+            f"graph: the degree of node {k} (sum of its symmetrized edge weights) is {degree[k]}, "
+            f"beyond the float64 range; rescale the weights"
+        )
     parts = (torch.from_numpy(rows), torch.from_numpy(M.indices.astype(np.int64)), torch.from_numpy(sym),
              torch.from_numpy(a - b), torch.from_numpy(degree))
     graph._cache["parts"] = parts
     return parts
+
+
+def _check_degree_range(degree: torch.Tensor, dtype: torch.dtype, what: str) -> float:
+    """Largest degree, refused if an unnormalized operator of ``dtype`` would hold inf."""
+    dmax = float(degree.max()) if degree.numel() else 0.0
+    real = torch.float32 if dtype in (torch.float32, torch.complex64) else torch.float64
+    if 2 * dmax > torch.finfo(real).max:
+        raise GraphInputError(
+            f"graph has a node of degree {dmax}, so {what} would hold values beyond the {real} range "
+            f"(about {torch.finfo(real).max:.3g}); pass dtype=torch.float64 (complex128) or rescale the weights"
+        )
+    return dmax
 
 
 def _inv_sqrt(d: torch.Tensor) -> torch.Tensor:
@@ -270,12 +291,12 @@ def combinatorial_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype
         >>> combinatorial_laplacian(g).to_dense().tolist()
         [[0.5, -0.5], [-0.5, 0.5]]
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "combinatorial_laplacian")
     dtype = _real_dtype(dtype)
     rows, cols, sym, _, degree = _parts(graph)
     n = graph.num_nodes
+    dmax = _check_degree_range(degree, dtype, "combinatorial_laplacian")
     m = _assemble(n, rows, cols, -sym, dtype, diag=degree)
-    dmax = float(degree.max()) if n else 0.0
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 2 * dmax), kind="combinatorial_laplacian")
 
 
@@ -303,7 +324,7 @@ def normalized_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] =
         >>> normalized_laplacian(g).to_dense().tolist()
         [[1.0, -1.0], [-1.0, 1.0]]
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "normalized_laplacian")
     dtype = _real_dtype(dtype)
     rows, cols, vals, _ = _normalized_adjacency_parts(graph)
     n = graph.num_nodes
@@ -331,7 +352,7 @@ def random_walk_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] 
         >>> random_walk_laplacian(g).to_dense()[1].tolist()
         [-0.5, 1.0, -0.5]
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "random_walk_laplacian")
     dtype = _real_dtype(dtype)
     rows, cols, sym, _, degree = _parts(graph)
     n = graph.num_nodes
@@ -357,7 +378,7 @@ def renormalized_adjacency(graph: DirectedGraph, *, dtype: Optional[torch.dtype]
         >>> renormalized_adjacency(g).to_dense()[2].tolist()
         [0.0, 0.0, 1.0]
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "renormalized_adjacency")
     dtype = _real_dtype(dtype)
     rows, cols, sym, _, degree = _parts(graph)
     n = graph.num_nodes
@@ -400,14 +421,14 @@ def magnetic_adjacency(graph: DirectedGraph, charge: float = 0.25, *, phase: str
         >>> round(h[0, 1].imag.item(), 3), round(h[1, 0].imag.item(), 3)
         (0.5, -0.5)
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "magnetic_adjacency")
     q = _check_charge(charge)
     phase = _check_phase(phase)
     dtype = _complex_dtype(dtype)
     rows, cols, vals, degree = _magnetic_values(graph, q, phase)
     n = graph.num_nodes
+    dmax = _check_degree_range(degree, dtype, "magnetic_adjacency")
     m = _assemble(n, rows, cols, vals, dtype)
-    dmax = float(degree.max()) if n else 0.0
     return SparseOperator(m, hermitian=True, spectrum=(-dmax, dmax), kind="magnetic_adjacency")
 
 
@@ -433,7 +454,7 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
         >>> op.hermitian, op.spectrum
         (True, (0.0, 2.0))
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "magnetic_laplacian")
     q = _check_charge(charge)
     phase = _check_phase(phase)
     dtype = _complex_dtype(dtype)
@@ -451,8 +472,9 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
         spectrum = (0.0, 2.0)
     else:
         rows, cols, vals, degree = _magnetic_values(graph, q, phase)
+        dmax = _check_degree_range(degree, dtype, "magnetic_laplacian(normalized=False)")
         m = _assemble(n, rows, cols, -vals, dtype, diag=degree)
-        spectrum = (0.0, 2 * (float(degree.max()) if n else 0.0))
+        spectrum = (0.0, 2 * dmax)
     return SparseOperator(m, hermitian=True, spectrum=spectrum,
                           kind="magnetic_laplacian" if normalized else "magnetic_laplacian_unnormalized")
 
@@ -479,7 +501,8 @@ def diffusion(graph: DirectedGraph, charge: Optional[float] = None, *, phase: st
         >>> diffusion(g).to_dense().tolist()
         [[0.5, 0.5], [0.5, 0.5]]
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "diffusion")
+    phase = _check_phase(phase)  # checked even when charge is None: a typo is never ignored
     n = graph.num_nodes
     half = torch.full((n,), 0.5, dtype=torch.float64)
     if charge is None:
@@ -514,7 +537,7 @@ def random_walk(graph: DirectedGraph, lazy: bool = True, *, dtype: Optional[torc
         >>> random_walk(g).to_dense().sum(0).tolist()
         [1.0, 1.0, 1.0]
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "random_walk")
     dtype = _real_dtype(dtype)
     rows, cols, sym, _, degree = _parts(graph)
     n = graph.num_nodes
@@ -542,7 +565,10 @@ def _stationary(P_t: sp.csr_matrix, c: np.ndarray, tol: float, max_iter: int) ->
         if np.abs(new - pi).sum() < tol:
             return new
         pi = new
-    raise GraphInputError(f"stationary distribution did not converge in max_iter={max_iter} iterations; raise teleport or max_iter")
+    raise GraphInputError(
+        f"stationary distribution did not converge to tol={tol} in max_iter={max_iter} iterations; "
+        f"raise teleport, tol or max_iter"
+    )
 
 
 def pagerank_laplacian(graph: DirectedGraph, teleport: float = 0.05, *, dtype: Optional[torch.dtype] = None,
@@ -573,11 +599,16 @@ def pagerank_laplacian(graph: DirectedGraph, teleport: float = 0.05, *, dtype: O
         >>> round(float(op.to_dense().sum()), 6)
         0.0
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "pagerank_laplacian")
     dtype = _real_dtype(dtype)
     if isinstance(teleport, bool) or not isinstance(teleport, numbers.Real) or not (0.0 < float(teleport) < 1.0):
         raise GraphInputError(f"teleport must be a probability in (0, 1); got {teleport!r}")
     t = float(teleport)
+    if isinstance(tol, bool) or not isinstance(tol, numbers.Real) or not (0.0 < float(tol) < math.inf):
+        raise GraphInputError(f"tol must be a finite number > 0 (an L1 change of the stationary vector); got {tol!r}")
+    if isinstance(max_iter, bool) or not isinstance(max_iter, numbers.Integral) or int(max_iter) < 1:
+        raise GraphInputError(f"max_iter must be an integer >= 1; got {max_iter!r}")
+    tol, max_iter = float(tol), int(max_iter)
     n = graph.num_nodes
     if n == 0:
         raise GraphInputError("graph must have at least one node for pagerank_laplacian; got num_nodes = 0")
@@ -649,7 +680,7 @@ def proximity_operators(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = 
         >>> ops.second_out.to_dense()[0, 1].item() > 0
         True
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "proximity_operators")
     dtype = _real_dtype(dtype)
     A = graph.to_scipy("csr").astype(np.float64)
     in_deg = np.asarray(A.sum(axis=0)).ravel()
@@ -740,7 +771,7 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
         >>> y.abs().sum().backward(); q.grad is not None
         True
     """
-    graph = _check_graph(graph)
+    graph = _check_graph(graph, "magnetic_product")
     phase = _check_phase(phase)
     if not isinstance(charge, torch.Tensor) or charge.dim() != 0 or not charge.dtype.is_floating_point:
         raise GraphInputError(

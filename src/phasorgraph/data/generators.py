@@ -21,7 +21,8 @@ from typing import Any, Sequence
 import numpy as np
 import torch
 
-from ..errors import GraphInputError
+from .._limits import check_node_count, physical_memory
+from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
 
 __all__ = [
@@ -47,8 +48,13 @@ def _rng(seed: Any) -> np.random.Generator:
 
 def _count(name: str, value: Any, minimum: int = 0) -> int:
     if isinstance(value, bool) or not isinstance(value, numbers.Integral) or int(value) < minimum:
-        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {value!r}")
+        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {_value_text(value)}")
     return int(value)
+
+
+def _node_count(name: str, value: Any, minimum: int = 1) -> int:
+    """A node count n >= minimum whose per-node arrays fit in memory."""
+    return check_node_count(_count(name, value, minimum), what="this generator", name=name)
 
 
 def _probability(name: str, value: Any) -> float:
@@ -60,17 +66,40 @@ def _probability(name: str, value: Any) -> float:
 def _sizes(name: str, sizes: Any) -> np.ndarray:
     try:
         arr = np.asarray(sizes)
-    except Exception as exc:  # pragma: no cover - numpy raises many kinds
-        raise GraphInputError(f"{name} must be a 1-D sequence of non-negative integers; got {sizes!r}") from exc
+    except (ValueError, TypeError) as exc:
+        raise GraphInputError(
+            f"{name} must be a 1-D sequence of non-negative integers; got {_value_text(sizes)}") from exc
     if arr.ndim != 1 or arr.size == 0:
         raise GraphInputError(f"{name} must be a non-empty 1-D sequence of non-negative integers; got shape {arr.shape}")
     if arr.dtype.kind not in "iu" or (arr < 0).any():
-        raise GraphInputError(f"{name} must hold non-negative integers; got {arr.tolist()}")
-    return arr.astype(np.int64)
+        raise GraphInputError(f"{name} must hold non-negative integers; got {_value_text(arr.tolist())}")
+    if arr.dtype.kind == "u" and (arr >= 2 ** 62).any():
+        raise GraphInputError(f"{name} must hold sizes below 2**62; got {_value_text(arr.tolist())}")
+    arr = arr.astype(np.int64)
+    total = sum(int(v) for v in arr)  # Python ints: no overflow
+    if total >= 2 ** 31:
+        raise GraphInputError(
+            f"{name} adds up to {total} nodes; the generators accept fewer than 2**31 nodes in all"
+        )
+    check_node_count(total, what="this generator", name=name)
+    return arr
 
 
 def _block_matrix(name: str, value: Any, blocks: int) -> np.ndarray:
-    arr = np.asarray(value, dtype=np.float64) if not isinstance(value, torch.Tensor) else value.detach().cpu().double().numpy()
+    accepted = f"a probability or a ({blocks}, {blocks}) matrix of probabilities, one entry per block pair"
+    if isinstance(value, torch.Tensor):
+        if value.device.type == "meta" or value.is_complex() or value.layout != torch.strided:
+            raise GraphInputError(f"{name} must be {accepted}; got a tensor of dtype {value.dtype} on {value.device}")
+        value = value.detach().cpu().numpy()
+    try:
+        arr = np.asarray(value)
+    except (ValueError, TypeError) as exc:  # ragged rows
+        raise GraphInputError(
+            f"{name} must be {accepted}; got {_value_text(value)} (rows of different lengths?)"
+        ) from exc
+    if arr.dtype.kind not in "iufb":  # text, None, complex, objects: never cast silently
+        raise GraphInputError(f"{name} must be {accepted} (real numbers); got {_value_text(value)}")
+    arr = arr.astype(np.float64)
     if arr.ndim == 0:
         arr = np.full((blocks, blocks), float(arr))
     if arr.shape != (blocks, blocks):
@@ -218,6 +247,11 @@ def _block_edges(rng, sizes: np.ndarray, prob: np.ndarray, direction: np.ndarray
     trials = np.where(a_ids == b_ids, na * (na - 1) // 2, na * nb)
     counts = rng.binomial(trials, prob[a_ids, b_ids])  # edge count of every block pair at once
     total = int(counts.sum())
+    if 64 * total > physical_memory():  # source, target, pair indices, DirectedGraph copies
+        raise GraphInputError(
+            f"density draws {total} edges, more than this machine's memory can hold "
+            f"({physical_memory() / 2 ** 30:.3g} GiB); lower density or the block sizes"
+        )
     src = np.empty(total, dtype=np.int64)
     dst = np.empty(total, dtype=np.int64)
     pos = 0
@@ -318,7 +352,7 @@ def directed_cycle(n: int) -> DirectedGraph:
         >>> directed_cycle(4).target.tolist()
         [1, 2, 3, 0]
     """
-    n = _count("n", n, 1)
+    n = _node_count("n", n, 1)
     src = torch.arange(n)
     return DirectedGraph(src, (src + 1) % n, None, n)
 
@@ -330,7 +364,7 @@ def out_star(n: int) -> DirectedGraph:
         >>> out_star(4).target.tolist()
         [1, 2, 3]
     """
-    n = _count("n", n, 1)
+    n = _node_count("n", n, 1)
     leaves = torch.arange(1, n)
     return DirectedGraph(torch.zeros_like(leaves), leaves, None, n)
 
@@ -363,10 +397,15 @@ def random_out_graph(n: int, k: int, seed: Any = None) -> DirectedGraph:
         >>> torch.bincount(g.source, minlength=10).tolist() == [3] * 10
         True
     """
-    n = _count("n", n, 1)
+    n = _node_count("n", n, 1)
     k = _count("k", k, 0)
     if k > n - 1:
         raise GraphInputError(f"k must be at most n - 1 = {n - 1} (targets are distinct other nodes); got k = {k}")
+    if 64 * n * k > physical_memory():
+        raise GraphInputError(
+            f"n * k = {n * k} edges is more than this machine's memory can hold "
+            f"({physical_memory() / 2 ** 30:.3g} GiB); lower n or k"
+        )
     rng = _rng(seed)
     others = n - 1
     chosen = np.empty((n, k), dtype=np.int64)

@@ -159,6 +159,29 @@ def _reverse_edges(src: np.ndarray, dst: np.ndarray, n: int) -> np.ndarray:
     return rev
 
 
+def _check_split_sizes(task: str, eligible: int, reciprocal: int, *parts) -> None:
+    """Refuse a link split that would come out empty where the caller asked for something."""
+    if eligible == 0:
+        if task == "direction":
+            raise GraphInputError(
+                f"graph has no one-way link, so the direction question has nothing to split: "
+                f"{reciprocal} reciprocal links (excluded from it) and no other link between distinct nodes"
+            )
+        raise GraphInputError("graph has no link between distinct nodes, so there is nothing to split")
+    for name, fraction, count in parts:
+        if fraction > 0 and count == 0:
+            raise GraphInputError(
+                f"{name} = {fraction} of the {eligible} eligible links rounds to 0 links; raise {name} to "
+                f"at least {0.5 / eligible:.3g} (one link) or pass 0 for an empty split"
+            )
+    held = sum(count for _, _, count in parts)
+    if held >= eligible:
+        raise GraphInputError(
+            f"val_fraction and test_fraction take all {eligible} eligible links after rounding, leaving none "
+            f"for training; lower them"
+        )
+
+
 def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: float = 0.1,
                 test_fraction: float = 0.1, seed: Any = None) -> LinkSplit:
     r"""Leak-free link split for link existence or link direction prediction.
@@ -193,6 +216,11 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
         LinkSplit with ``task``, ``train_graph`` and LinkSets ``train``, ``val``, ``test``, each
         ``pairs`` (2, K) int64 and ``labels`` (K,) int64.
 
+    Raises:
+        GraphInputError: instead of returning an empty split, when no link is eligible (for
+            ``task="direction"``, a graph whose links are all reciprocal), when a positive
+            fraction rounds to 0 links, or when rounding leaves no training link.
+
     Notes:
         Negatives are drawn exactly and vectorized: unordered pairs are numbered by an integer
         bijection and negatives are uniform ranks in the complement of the links. If the graph
@@ -223,6 +251,8 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
     eligible = np.arange(link_edges.size) if task == "existence" else np.flatnonzero(~reciprocal)
     n_val = int(round(fr_val * eligible.size))
     n_test = int(round(fr_test * eligible.size))
+    _check_split_sizes(task, eligible.size, int(reciprocal.sum()), ("val_fraction", fr_val, n_val),
+                       ("test_fraction", fr_test, n_test))
     val_ids, test_ids, train_ids = _three_way(rng, eligible, n_val, n_test)
 
     held = np.concatenate([val_ids, test_ids])
