@@ -24,7 +24,9 @@ from phasorgraph import (
     random_walk,
     renormalized_adjacency,
 )
-from phasorgraph.data import directed_block_model, directed_cycle, split_links
+from phasorgraph import magnetic_matmul
+from phasorgraph.data import GraphBatch, directed_block_model, directed_cycle, iterate_batches, split_links, split_nodes
+from phasorgraph.segments import segment_count, segment_mean, segment_sum
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
 
 
@@ -243,6 +245,49 @@ CASES = [
     ("astronomically large cycle", lambda: directed_cycle(2 ** 40), r"n has num_nodes = 1099511627776"),
     ("direction split of reciprocal links only", lambda: split_links(DirectedGraph([0, 1], [1, 0]), "direction"),
      r"graph has no one-way link, so the direction question has nothing to split: 1 reciprocal links"),
+    # --- found by a harness of bad inputs over the public API (issue 12: "look for the same class")
+    ("flag given as text", lambda: magnetic_laplacian(_g(), 0.25, normalized="False"),
+     r"normalized must be True or False; got 'False'"),
+    ("lazy flag given as a number", lambda: random_walk(_g(), lazy=0), r"lazy must be True or False; got 0"),
+    ("phase given as an array", lambda: magnetic_laplacian(_g(), 0.25, phase=np.array(["sign", "sign"])),
+     r"phase must be one of \('difference', 'sign'\); got array\("),
+    ("dtype given as a list", lambda: magnetic_adjacency(_g(), 0.25, dtype=[torch.complex64]),
+     r"dtype must be torch\.complex64 or torch\.complex128 .*; got \[torch\.complex64\]"),
+    ("dtype given as an array", lambda: normalized_laplacian(_g(), dtype=np.ones(2)),
+     r"dtype must be torch\.float32 or torch\.float64 for this real operator; got array\("),
+    ("networkx weight key that is a list", lambda: DirectedGraph.from_networkx(nx.DiGraph([(0, 1)]), weight=["w"]),
+     r"weight must be the name of an edge attribute \(a string or other hashable key\) or None; got \['w'\]"),
+    ("max_nodes not an integer", lambda: fourier_basis(normalized_laplacian(_g()), max_nodes=float("nan")),
+     r"max_nodes must be an integer >= 0; got nan"),
+    ("Lanczos tol as text", lambda: largest_eigenvalue(normalized_laplacian(_g()), tol="1e-8"),
+     r"tol must be a finite number > 0; got '1e-8'"),
+    ("refresh flag as text", lambda: largest_eigenvalue(normalized_laplacian(_g()), refresh="yes"),
+     r"refresh must be True or False; got 'yes'"),
+    ("filter bank that is not a list", lambda: frame_bounds(3), r"bank must be a list or tuple of \(N, N\) matrices"),
+    ("ragged filter bank entry", lambda: frame_bounds([[[1.0], [1.0, 2.0]]]),
+     r"bank\[0\] must be a square \(N, N\) matrix of numbers or a SparseOperator"),
+    ("frame weight as text", lambda: frame_bounds([np.eye(2)], weight="1"),
+     r"weight must be a positive real vector of shape \(2,\); got 1 \(dtype <U1\)"),
+    ("segment readout of a list", lambda: segment_sum([[1.0]], torch.tensor([0])),
+     r"x must be a torch\.Tensor with one row per node; got list"),
+    ("segment count of float ids", lambda: segment_count(torch.tensor([0.0, 1.0])),
+     r"graph_index must be a 1-D int64 or int32 tensor; got shape \(2,\), dtype torch\.float32"),
+    ("num_graphs as text", lambda: segment_mean(torch.ones(2, 1), torch.tensor([0, 1]), "2"),
+     r"num_graphs must be an integer >= 0; got '2'"),
+    ("astronomically many graphs", lambda: segment_sum(torch.ones(2, 1), torch.tensor([0, 1]), 2 ** 45),
+     r"num_graphs has num_nodes = 35184372088832 .* a per-graph readout needs"),
+    ("features on the meta device into magnetic_matmul",
+     lambda: magnetic_matmul(_g(), torch.tensor(0.1), torch.ones(3, 1, device="meta")),
+     r"x is on meta but charge on cpu; put them on the same device \(the meta device holds no values\)"),
+    ("shuffle flag as text", lambda: list(iterate_batches([_g()], shuffle="no")), r"shuffle must be True or False; got 'no'"),
+    ("readout reduce as a list", lambda: GraphBatch.from_graphs([_g()]).readout(torch.ones(3, 1), reduce=["sum"]),
+     r"reduce must be one of \('mean', 'sum', 'max'\); got \['sum'\]"),
+    ("split task as an array", lambda: split_links(_g(), np.array(["direction"])), r"task must be one of .*; got array\("),
+    ("ragged node labels", lambda: split_nodes([[0], [1, 2]]), r"labels must be a 1-D array of integer classes; got \[\[0\], \[1, 2\]\]"),
+    ("node labels on the meta device", lambda: split_nodes(torch.zeros(3, dtype=torch.int64, device="meta")),
+     r"labels is on the meta device"),
+    ("block sizes on the meta device", lambda: directed_block_model(torch.ones(2, dtype=torch.int64, device="meta"), 0.1, 0.5),
+     r"sizes is on the meta device"),
     ("split fraction too small for one link", lambda: split_links(_g(), "direction", 0.1, 0.4),
      r"val_fraction = 0\.1 of the 3 eligible links rounds to 0 links; raise val_fraction to at least 0\.167"),
 ]

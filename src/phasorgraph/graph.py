@@ -557,6 +557,13 @@ class DirectedGraph:
 
         if not isinstance(G, nx.Graph):
             raise GraphInputError(f"G must be a networkx graph; got {type(G).__name__}")
+        try:
+            hash(weight)
+        except TypeError:
+            raise GraphInputError(
+                f"weight must be the name of an edge attribute (a string or other hashable key) or None; "
+                f"got {_value_text(weight)}"
+            ) from None
         index = {node: i for i, node in enumerate(G.nodes)}
         rows, cols, vals = [], [], []
         for u, v, data in G.edges(data=True):
@@ -600,8 +607,8 @@ class DirectedGraph:
     def to_scipy(self, format: str = "csr") -> sp.spmatrix:
         """The weighted adjacency A (N, N) as a scipy sparse matrix, A[u, v] = w(u -> v)."""
         formats = ("csr", "csc", "coo", "lil", "dok", "bsr", "dia")
-        if format not in formats:
-            raise GraphInputError(f"format must be one of {formats} (scipy sparse formats); got {format!r}")
+        if not isinstance(format, str) or format not in formats:
+            raise GraphInputError(f"format must be one of {formats} (scipy sparse formats); got {_value_text(format)}")
         if format != "coo":
             check_node_count(self.num_nodes, what=f"to_scipy({format!r})", bytes_per_node=16)
         coo = sp.coo_matrix(

@@ -27,7 +27,8 @@ import scipy.sparse as sp
 import torch
 
 from ._limits import check_node_count
-from .errors import GraphInputError
+from ._checks import check_choice, check_flag
+from .errors import GraphInputError, _value_text
 from .graph import DirectedGraph
 from .sparse import SparseOperator, csr_matrix, values_matmul
 
@@ -96,27 +97,25 @@ def _check_charge(charge) -> float:
 
 
 def _check_phase(phase: str) -> str:
-    if phase not in _PHASES:
-        raise GraphInputError(f"phase must be one of {_PHASES}; got {phase!r}")
-    return phase
+    return check_choice("phase", phase, _PHASES)
 
 
 def _real_dtype(dtype) -> torch.dtype:
     dtype = torch.float32 if dtype is None else dtype
-    if dtype not in _REAL:
+    if not isinstance(dtype, torch.dtype) or dtype not in _REAL:
         raise GraphInputError(
-            f"dtype must be torch.float32 or torch.float64 for this real operator; got {dtype}"
+            f"dtype must be torch.float32 or torch.float64 for this real operator; got {_value_text(dtype)}"
         )
     return dtype
 
 
 def _complex_dtype(dtype) -> torch.dtype:
     dtype = torch.complex64 if dtype is None else dtype
-    dtype = _TO_COMPLEX.get(dtype, dtype)
-    if dtype not in _COMPLEX:
+    dtype = _TO_COMPLEX.get(dtype, dtype) if isinstance(dtype, torch.dtype) else dtype
+    if not isinstance(dtype, torch.dtype) or dtype not in _COMPLEX:
         raise GraphInputError(
             f"dtype must be torch.complex64 or torch.complex128 (or float32/float64 for that "
-            f"precision) for a magnetic operator; got {dtype}"
+            f"precision) for a magnetic operator; got {_value_text(dtype)}"
         )
     return dtype
 
@@ -458,6 +457,7 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
     q = _check_charge(charge)
     phase = _check_phase(phase)
     dtype = _complex_dtype(dtype)
+    normalized = check_flag("normalized", normalized)
     n = graph.num_nodes
     if normalized:
         rows, cols, sym, anti, degree = _parts(graph)
@@ -539,6 +539,7 @@ def random_walk(graph: DirectedGraph, lazy: bool = True, *, dtype: Optional[torc
     """
     graph = _check_graph(graph, "random_walk")
     dtype = _real_dtype(dtype)
+    lazy = check_flag("lazy", lazy)
     rows, cols, sym, _, degree = _parts(graph)
     n = graph.num_nodes
     vals = sym * _inv(degree)[cols]
@@ -788,6 +789,13 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
     def apply(x: torch.Tensor) -> torch.Tensor:
         if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n:
             raise GraphInputError(f"x must have num_nodes = {n} rows (shape (N, ...)); got shape {tuple(getattr(x, 'shape', ()))}")
+        if x.dtype not in _REAL + _COMPLEX:
+            raise GraphInputError(f"x must be float32, float64, complex64 or complex128; got {x.dtype}")
+        if x.device != charge.device:
+            raise GraphInputError(
+                f"x is on {x.device} but charge on {charge.device}; put them on the same device"
+                + (" (the meta device holds no values)" if x.device.type == "meta" else "")
+            )
         precision = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
         if precision != real:
             raise GraphInputError(f"charge has dtype {real} but x has precision {precision}; use the same precision")

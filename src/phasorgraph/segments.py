@@ -8,17 +8,23 @@ from __future__ import annotations
 
 import torch
 
+from ._checks import check_int
+from ._limits import check_node_count
 from .errors import GraphInputError
 
 __all__ = ["segment_sum", "segment_mean", "segment_max", "segment_count", "check_segments"]
 
 
-def check_segments(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> int:
-    """Validate (x, index) and return the number of segments."""
+def _check_index(index: torch.Tensor, num_segments) -> int:
+    """Validate graph_index (and num_graphs); return the number of segments."""
     if not isinstance(index, torch.Tensor) or index.dim() != 1 or index.dtype not in (torch.int64, torch.int32):
-        raise GraphInputError(f"graph_index must be a 1-D integer tensor; got {getattr(index, 'shape', type(index).__name__)}")
-    if x.dim() < 1 or x.shape[0] != index.shape[0]:
-        raise GraphInputError(f"x must have one row per entry of graph_index ({index.shape[0]}); got shape {tuple(x.shape)}")
+        what = f"shape {tuple(index.shape)}, dtype {index.dtype}" if isinstance(index, torch.Tensor) else type(index).__name__
+        raise GraphInputError(f"graph_index must be a 1-D int64 or int32 tensor; got {what}")
+    if index.device.type == "meta":
+        raise GraphInputError("graph_index is on the meta device, which holds shapes but no values")
+    if num_segments is not None:
+        num_segments = check_node_count(check_int("num_graphs", num_segments), what="a per-graph readout",
+                                        bytes_per_node=8, name="num_graphs")
     if index.numel() and int(index.min()) < 0:
         raise GraphInputError("graph_index must be non-negative")
     largest = int(index.max()) + 1 if index.numel() else 0
@@ -26,7 +32,19 @@ def check_segments(x: torch.Tensor, index: torch.Tensor, num_segments: int | Non
         return largest
     if largest > num_segments:
         raise GraphInputError(f"graph_index holds segment {largest - 1} but num_graphs is {num_segments}")
-    return int(num_segments)
+    return num_segments
+
+
+def check_segments(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> int:
+    """Validate (x, index) and return the number of segments."""
+    s = _check_index(index, num_segments)
+    if not isinstance(x, torch.Tensor):
+        raise GraphInputError(f"x must be a torch.Tensor with one row per node; got {type(x).__name__}")
+    if x.dim() < 1 or x.shape[0] != index.shape[0]:
+        raise GraphInputError(f"x must have one row per entry of graph_index ({index.shape[0]}); got shape {tuple(x.shape)}")
+    if x.device != index.device:
+        raise GraphInputError(f"x is on {x.device} but graph_index on {index.device}; put them on the same device")
+    return s
 
 
 def _expand(index: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
@@ -42,7 +60,7 @@ def segment_sum(x: torch.Tensor, index: torch.Tensor, num_segments: int | None =
 
 def segment_count(index: torch.Tensor, num_segments: int | None = None) -> torch.Tensor:
     """Rows per segment: (S,) int64."""
-    s = int(index.max()) + 1 if num_segments is None and index.numel() else (num_segments or 0)
+    s = _check_index(index, num_segments)
     return torch.bincount(index.to(torch.int64), minlength=s)
 
 
@@ -56,9 +74,9 @@ def segment_mean(x: torch.Tensor, index: torch.Tensor, num_segments: int | None 
 
 def segment_max(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> torch.Tensor:
     """Elementwise max over the rows of each segment (0 for an empty segment): (S, ...). Real x only."""
+    s = check_segments(x, index, num_segments)
     if x.is_complex():
         raise GraphInputError("x must be real for a max readout; take the modulus or real part first")
-    s = check_segments(x, index, num_segments)
     out = x.new_zeros((s,) + tuple(x.shape[1:]))
     if x.shape[0] == 0:
         return out

@@ -12,6 +12,7 @@ import numpy as np
 import scipy.sparse.linalg as spla
 import torch
 
+from ._checks import check_flag, check_int, check_positive_number
 from .errors import GraphInputError
 from .sparse import SparseOperator, _apply
 
@@ -94,6 +95,8 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
         2.0
     """
     op = _check_operator(op)
+    tol = check_positive_number("tol", tol)
+    refresh = check_flag("refresh", refresh)
     if op.max_eigenvalue is not None and not refresh:
         return op.max_eigenvalue
     n = op.num_rows
@@ -124,6 +127,7 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
 
 
 def _dense(op: SparseOperator, max_nodes: int, name: str = "op") -> np.ndarray:
+    max_nodes = check_int("max_nodes", max_nodes)
     if op.num_rows > max_nodes:
         raise GraphInputError(
             f"{name} has {op.num_rows} nodes but this small-graph utility builds a dense N x N "
@@ -175,6 +179,7 @@ def frame_bounds(bank: Sequence | Callable, op: SparseOperator | None = None, *,
 
     Small graphs only (dense).
     """
+    max_nodes = check_int("max_nodes", max_nodes)
     if callable(bank) and not isinstance(bank, (list, tuple)):
         if op is None:
             raise GraphInputError("op is needed to size the identity when bank is a callable")
@@ -186,18 +191,51 @@ def frame_bounds(bank: Sequence | Callable, op: SparseOperator | None = None, *,
         out = bank(eye)  # (N, J, N): column i is the bank applied to e_i
         mats = [out[:, j, :].detach().numpy() for j in range(out.shape[1])]
     else:
+        if not isinstance(bank, (list, tuple)):
+            raise GraphInputError(
+                f"bank must be a list or tuple of (N, N) matrices / SparseOperators, or a callable; "
+                f"got {type(bank).__name__}"
+            )
         mats = []
-        for F in bank:
+        for j, F in enumerate(bank):
             if isinstance(F, SparseOperator):
                 mats.append(_dense(F, max_nodes, "bank entry"))
-            else:
-                mats.append(np.asarray(torch.as_tensor(F).detach()))
+                continue
+            if isinstance(F, torch.Tensor):
+                if F.device.type == "meta" or F.layout != torch.strided:
+                    raise GraphInputError(f"bank[{j}] must be a dense matrix with values; got a tensor on "
+                                          f"{F.device} with layout {F.layout}")
+                F = F.detach().cpu().resolve_conj().numpy()
+            try:
+                F = np.asarray(F)
+            except (ValueError, TypeError):
+                F = np.asarray(None, dtype=object)
+            if F.dtype.kind not in "iufc" or F.ndim != 2 or F.shape[0] != F.shape[1]:
+                raise GraphInputError(
+                    f"bank[{j}] must be a square (N, N) matrix of numbers or a SparseOperator; got "
+                    f"shape {F.shape}, dtype {F.dtype}"
+                )
+            if mats and F.shape != mats[0].shape:
+                raise GraphInputError(f"bank[{j}] has shape {F.shape} but bank[0] has {mats[0].shape}")
+            mats.append(F)
     if not mats:
         raise GraphInputError("bank must hold at least one filter")
     n = mats[0].shape[0]
     gram = sum(F.conj().T @ F for F in mats)
     if weight is not None:
-        w = np.asarray(torch.as_tensor(weight, dtype=torch.float64))
+        if isinstance(weight, torch.Tensor):
+            if weight.device.type == "meta" or weight.is_complex():
+                raise GraphInputError(f"weight must be a positive real vector with values; got a tensor of "
+                                      f"dtype {weight.dtype} on {weight.device}")
+            weight = weight.detach().cpu().numpy()
+        try:
+            w = np.asarray(weight)
+        except (ValueError, TypeError):
+            w = np.asarray(None, dtype=object)
+        if w.dtype.kind not in "iuf":
+            raise GraphInputError(f"weight must be a positive real vector of shape ({n},); got "
+                                  f"{str(weight)[:60]} (dtype {w.dtype})")
+        w = w.astype(np.float64)
         if w.shape != (n,) or np.any(w <= 0):
             raise GraphInputError(
                 f"weight must be a positive vector of shape ({n},); got shape {w.shape}"

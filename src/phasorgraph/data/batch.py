@@ -14,7 +14,8 @@ from typing import Any, Iterator, Optional, Sequence
 import numpy as np
 import torch
 
-from ..errors import GraphInputError
+from .._checks import check_flag
+from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
 from ..segments import segment_max, segment_mean, segment_sum
 from .generators import _rng
@@ -129,8 +130,8 @@ class GraphBatch:
             (N, ...) -> (G, ...).
         """
         x = self._check_rows(x)
-        if reduce not in _REDUCE:
-            raise GraphInputError(f"reduce must be one of {tuple(_REDUCE)}; got {reduce!r}")
+        if not isinstance(reduce, str) or reduce not in _REDUCE:
+            raise GraphInputError(f"reduce must be one of {tuple(_REDUCE)}; got {_value_text(reduce)}")
         return _REDUCE[reduce](x, self.graph_index, self.num_graphs)
 
     def unbatch(self, x: torch.Tensor) -> list[torch.Tensor]:
@@ -173,7 +174,7 @@ def iterate_batches(graphs: Sequence[DirectedGraph], targets: Optional[torch.Ten
     for i, g in enumerate(graphs):
         if not isinstance(g, DirectedGraph):
             raise GraphInputError(f"graphs[{i}] must be a DirectedGraph; got {type(g).__name__}")
-    order = _rng(seed).permutation(len(graphs)) if shuffle else np.arange(len(graphs))
+    order = _rng(seed).permutation(len(graphs)) if check_flag("shuffle", shuffle) else np.arange(len(graphs))
     return _batches(graphs, targets, order, int(batch_size))
 
 

@@ -64,6 +64,10 @@ def _probability(name: str, value: Any) -> float:
 
 
 def _sizes(name: str, sizes: Any) -> np.ndarray:
+    if isinstance(sizes, torch.Tensor):
+        if sizes.device.type == "meta":
+            raise GraphInputError(f"{name} is on the meta device, which holds shapes but no values")
+        sizes = sizes.detach().cpu().numpy()
     try:
         arr = np.asarray(sizes)
     except (ValueError, TypeError) as exc:

@@ -16,7 +16,7 @@ import numpy as np
 import scipy.sparse as sp
 import torch
 
-from ..errors import GraphInputError
+from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
 from .generators import _index_from_pair, _num_pairs, _pair_from_index, _rng, _sample_avoiding, _sample_distinct
 
@@ -94,7 +94,12 @@ def split_nodes(labels: Any, train: float = 0.6, val: float = 0.2, seed: Any = N
         >>> len(s.train), len(s.val), len(s.test)
         (4, 2, 2)
     """
-    y = labels.detach().cpu().numpy() if isinstance(labels, torch.Tensor) else np.asarray(labels)
+    if isinstance(labels, torch.Tensor) and labels.device.type == "meta":
+        raise GraphInputError("labels is on the meta device, which holds shapes but no values; pass labels with values")
+    try:
+        y = labels.detach().cpu().numpy() if isinstance(labels, torch.Tensor) else np.asarray(labels)
+    except (ValueError, TypeError) as exc:
+        raise GraphInputError(f"labels must be a 1-D array of integer classes; got {_value_text(labels)}") from exc
     if y.ndim != 1 or (y.size and y.dtype.kind not in "iu"):
         raise GraphInputError(f"labels must be a 1-D array of integer classes; got shape {y.shape}, dtype {y.dtype}")
     fr_train, fr_val = _fractions("train", train, "val", val, allow_one=True)
@@ -234,8 +239,8 @@ def split_links(graph: DirectedGraph, task: str = "existence", val_fraction: flo
     """
     if not isinstance(graph, DirectedGraph):
         raise GraphInputError(f"graph must be a DirectedGraph; got {type(graph).__name__}")
-    if task not in _TASKS:
-        raise GraphInputError(f"task must be one of {_TASKS}; got {task!r}")
+    if not isinstance(task, str) or task not in _TASKS:
+        raise GraphInputError(f"task must be one of {_TASKS}; got {_value_text(task)}")
     fr_val, fr_test = _fractions("val_fraction", val_fraction, "test_fraction", test_fraction, allow_one=False)
     rng = _rng(seed)
     n = graph.num_nodes
