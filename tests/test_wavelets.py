@@ -109,13 +109,18 @@ def test_walk_powers_run_on_hermitian_kernel():
     calls = []
     import phasorgraph.sparse as sparse_module
 
-    original = sparse_module._GeneralMatmul.apply
-    sparse_module._GeneralMatmul.apply = lambda *a: calls.append(1) or original(*a)
+    original = sparse_module._operator_product
+
+    def spy(op, *args):
+        calls.append(op.hermitian)
+        return original(op, *args)
+
+    sparse_module._operator_product = spy
     try:
         DiffusionWavelets(3)(x, op).sum().backward()
     finally:
-        sparse_module._GeneralMatmul.apply = original
-    assert not calls
+        sparse_module._operator_product = original
+    assert calls and all(calls)
 
 
 @pytest.mark.parametrize("kind", KINDS)

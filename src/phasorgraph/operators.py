@@ -30,7 +30,7 @@ from ._limits import check_node_count
 from ._checks import check_choice, check_flag
 from .errors import GraphInputError, _value_text
 from .graph import DirectedGraph
-from .sparse import SparseOperator, csr_matrix, values_matmul
+from .sparse import PatternOperator, SparseOperator, csr_matrix
 
 __all__ = [
     "combinatorial_laplacian",
@@ -747,8 +747,8 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
     :math:`w_{uv} e^{i \Theta_{uv}(q)} / \sqrt{d_u d_v}` are computed from ``charge`` with torch
     ops on a fixed sparsity pattern (cached on the graph) when this function is called; every
     call of the returned map reuses them, so a K-step Chebyshev recursion computes (and keeps
-    for the backward) one value array, not K. :func:`phasorgraph.sparse.values_matmul` carries
-    the gradient from the values to q. Build a new map whenever the charge changes (once per
+    for the backward) one value array, not K. :class:`phasorgraph.sparse.PatternOperator` carries
+    the gradient from the values to q (a fused value-gradient kernel). Build a new map whenever the charge changes (once per
     forward pass in a layer).
 
     Args:
@@ -760,8 +760,10 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
     The precision and device of the values follow ``charge``.
 
     Returns:
-        A function taking x (N, ...) real or complex of the charge's precision, returning the
-        complex (N, ...) product (real x is multiplied without being cast to complex).
+        A :class:`phasorgraph.sparse.PatternOperator` ``I - A(q)``: call it (or its ``matmul``)
+        on x (N, ...) real or complex of the charge's precision for the complex (N, ...)
+        product (real x is multiplied without being cast to complex); its ``matmul_add`` gives
+        the fused ``alpha L x + shift x + beta z`` of a Chebyshev step.
 
     Example:
         >>> import torch
@@ -782,27 +784,11 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
     real = charge.dtype
     if real not in _REAL:
         raise GraphInputError(f"charge must be float32 or float64; got {real}")
-    n = graph.num_nodes
     crow, cols, rows, magnitude, base = _magnetic_factors(graph, phase, real, charge.device)
-    values = torch.polar(magnitude, base * charge)  # the non-zeros of D^-1/2 H(q) D^-1/2
-
-    def apply(x: torch.Tensor) -> torch.Tensor:
-        if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n:
-            raise GraphInputError(f"x must have num_nodes = {n} rows (shape (N, ...)); got shape {tuple(getattr(x, 'shape', ()))}")
-        if x.dtype not in _REAL + _COMPLEX:
-            raise GraphInputError(f"x must be float32, float64, complex64 or complex128; got {x.dtype}")
-        if x.device != charge.device:
-            raise GraphInputError(
-                f"x is on {x.device} but charge on {charge.device}; put them on the same device"
-                + (" (the meta device holds no values)" if x.device.type == "meta" else "")
-            )
-        precision = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
-        if precision != real:
-            raise GraphInputError(f"charge has dtype {real} but x has precision {precision}; use the same precision")
-        # real x stays real: values_matmul multiplies it by the real and imaginary parts directly
-        return x - values_matmul(crow, cols, values, x, hermitian=True, rows=rows)
-
-    return apply
+    angle = base * charge
+    # the non-zeros of D^-1/2 H(q) D^-1/2 as two real arrays (what the kernels read)
+    return PatternOperator(crow, cols, magnitude * torch.cos(angle), magnitude * torch.sin(angle),
+                           hermitian=True, identity=1.0, scale=-1.0, _checked=True)
 
 
 def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor, *,
@@ -811,7 +797,7 @@ def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor,
 
     :math:`y = L_{norm}(q)\, x = x - D^{-1/2} H(q) D^{-1/2} x`, built as in
     :func:`magnetic_product` (values from ``charge`` with torch ops on a cached fixed pattern;
-    :func:`phasorgraph.sparse.values_matmul` carries the gradient to q). For several products
+    :class:`phasorgraph.sparse.PatternOperator` carries the gradient to q). For several products
     at the same charge, call :func:`magnetic_product` once and reuse the map.
 
     Args:
@@ -834,4 +820,15 @@ def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor,
     n = graph.num_nodes if isinstance(graph, DirectedGraph) else None
     if n is not None and (not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n):
         raise GraphInputError(f"x must have num_nodes = {n} rows (shape (N, ...)); got shape {tuple(getattr(x, 'shape', ()))}")
-    return magnetic_product(graph, charge, phase=phase)(x)
+    apply = magnetic_product(graph, charge, phase=phase)
+    if x.dtype not in _REAL + _COMPLEX:
+        raise GraphInputError(f"x must be float32, float64, complex64 or complex128; got {x.dtype}")
+    if x.device != charge.device:
+        raise GraphInputError(
+            f"x is on {x.device} but charge on {charge.device}; put them on the same device"
+            + (" (the meta device holds no values)" if x.device.type == "meta" else "")
+        )
+    precision = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
+    if precision != charge.dtype:
+        raise GraphInputError(f"charge has dtype {charge.dtype} but x has precision {precision}; use the same precision")
+    return apply(x)

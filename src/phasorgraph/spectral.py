@@ -14,7 +14,7 @@ import torch
 
 from ._checks import check_flag, check_int, check_positive_number
 from .errors import GraphInputError
-from .sparse import SparseOperator, _apply
+from .sparse import SparseOperator
 
 __all__ = ["largest_eigenvalue", "fourier_basis", "frame_bounds", "dirichlet_energy", "DENSE_NODE_LIMIT"]
 
@@ -35,7 +35,7 @@ def _scipy_linear_operator(op: SparseOperator) -> spla.LinearOperator:
 
     def mv(v):
         t = torch.as_tensor(np.asarray(v).reshape(n, -1).astype(dtype, copy=False))
-        return _apply(op64, t).numpy()
+        return op64.matmul(t).numpy()
 
     return spla.LinearOperator((n, n), matvec=mv, matmat=mv, dtype=dtype)
 
@@ -62,7 +62,7 @@ def _power_iteration(op: SparseOperator, iterations: int = 300, seed: int = 0, s
     v = v / v.norm()
     lam = 0.0
     for _ in range(iterations):
-        w = _apply(op64, v) - shift * v
+        w = op64.matmul_add(v, v, beta=-shift)
         norm = float(w.norm())
         if norm == 0.0:
             return shift

@@ -9,7 +9,7 @@ only its product: which operator, and the affine map :math:`\tilde L = \alpha L 
 from __future__ import annotations
 
 import math
-from typing import Callable, Optional, Sequence
+from typing import Optional, Sequence
 
 import torch
 from torch import nn
@@ -17,14 +17,16 @@ from torch import nn
 from ._layer import add_bias, check_count, complex_view, factory_kwargs, make_parameters, mix, reset_uniform
 
 
-def chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tensor], alpha: float, beta: float,
-                  weights: torch.Tensor) -> torch.Tensor:
-    r""":math:`\sum_k T_k W_k` with :math:`\tilde L t = \alpha P t + \beta t` and ``product`` applying P.
+def chebyshev_sum(x: torch.Tensor, op, alpha: float, beta: float, weights: torch.Tensor) -> torch.Tensor:
+    r""":math:`\sum_k T_k W_k` with :math:`\tilde L t = \alpha P t + \beta t` and ``op`` applying P.
 
     :math:`T_0 = x`, :math:`T_1 = \tilde L x`, :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}`
-    (Hammond et al. 2011); ``weights`` is (K + 1, C_in, C_out). Terms and the output are
-    accumulated in place where autograd allows it, so memory holds the K + 1 terms autograd
-    needs, the output and about two transient blocks. This is the one place the recursion is
+    (Hammond et al. 2011); ``weights`` is (K + 1, C_in, C_out). ``op`` is anything with the
+    fused product ``op.matmul_add(t, z, alpha=, beta=, shift=)`` (a SparseOperator, a
+    PatternOperator, a sharded operator), so each term is one pass over memory:
+    ``T_k = op.matmul_add(T_{k-1}, T_{k-2}, alpha=2 alpha, shift=2 beta, beta=-1)``. A plain
+    callable applying P is also accepted (unfused steps). Memory holds the K + 1 terms autograd
+    needs, the output and one transient block. This is the one place the recursion is
     written: every Chebyshev layer calls it.
     """
     order = weights.shape[0] - 1
@@ -35,19 +37,18 @@ def chebyshev_sum(x: torch.Tensor, product: Callable[[torch.Tensor], torch.Tenso
     def add(out, term):
         return out.add_(term) if out.dtype == term.dtype else out + term
 
-    def scaled(t, a):
-        # a fresh tensor a * P t that may be changed in place (the sparse kernels return views,
-        # which autograd forbids changing in place; those get one copy through mul)
-        p = product(t)
-        if p._is_view():
-            return p.mul(a)
-        return p if a == 1 else p.mul_(a)
+    fused = getattr(op, "matmul_add", None)
+    if fused is None:  # a plain callable (or an object with only ``matmul``)
+        product = getattr(op, "matmul", op)
 
-    prev, cur = x, scaled(x, alpha).add_(x, alpha=beta)
+        def fused(t, z=None, *, alpha, shift, beta=1.0):
+            p = product(t) * alpha + t * shift
+            return p if z is None else p + z * beta
+
+    prev, cur = x, fused(x, alpha=alpha, shift=beta)
     out = add(out, mix(cur, weights[1]))
     for k in range(2, order + 1):
-        nxt = scaled(cur, 2 * alpha).add_(cur, alpha=2 * beta).sub_(prev)
-        prev, cur = cur, nxt
+        prev, cur = cur, fused(cur, prev, alpha=2 * alpha, shift=2 * beta, beta=-1.0)
         out = add(out, mix(cur, weights[k]))
     return out
 
@@ -102,7 +103,8 @@ class ChebyshevBase(nn.Module):
     def _filter(self, x: torch.Tensor, products: Sequence[tuple]) -> torch.Tensor:
         r"""The filtered output: output-column group g is :func:`chebyshev_sum` of ``products[g]``.
 
-        ``products`` holds G triples ``(product, alpha, beta)``, :math:`\tilde L_g = \alpha P_g + \beta I`;
+        ``products`` holds G triples ``(op, alpha, beta)``, :math:`\tilde L_g = \alpha P_g + \beta I`
+        (``op`` with ``matmul_add``, or a callable applying P);
         the C_out columns of every W_k (and of the bias) split into G equal consecutive blocks.
         """
         w = self._weights()

@@ -135,7 +135,7 @@ class ChebyshevFilter(ChebyshevBase):
         if op.num_nodes == 0:
             return empty_output(x, self.out_channels, output_dtype(x, op, self._weights()), self.parameters())
         # L~ = 2 L / lambda_max - I
-        return self._filter(x, [(op.matmul, 2.0 / lam, -1.0)])
+        return self._filter(x, [(op, 2.0 / lam, -1.0)])
 
 
 # ---------------------------------------------------------------------- renormalized

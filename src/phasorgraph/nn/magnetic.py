@@ -314,7 +314,7 @@ class MagneticFilter(ChebyshevBase):
                 product = graph.magnetic_product(q, phase=self.phase)
             else:
                 product = graph.operator(magnetic_laplacian, charge=q, normalized=True, phase=self.phase,
-                                         dtype=cdtype, device=device).matmul
+                                         dtype=cdtype, device=device)
             # L~ = L(q) - I: max_eigenvalue = 2 for the normalized magnetic Laplacian
             products.append((product, 1.0, -1.0))
         return self._filter(x, products)
