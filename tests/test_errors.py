@@ -26,6 +26,8 @@ from phasorgraph import (
 )
 from phasorgraph import magnetic_matmul
 from phasorgraph.data import GraphBatch, directed_block_model, directed_cycle, iterate_batches, split_links, split_nodes
+from phasorgraph.nn import (BandMix, DiffusionScattering, DiffusionWavelets, LearnedCharge, MagneticFilter, ModReLU,
+                             MomentReadout, ScaleSelector)
 from phasorgraph.segments import segment_count, segment_mean, segment_sum
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
 
@@ -121,7 +123,8 @@ CASES = [
     ("charge as text", lambda: magnetic_laplacian(_g(), "0.25"),
      r"charge must be a real number in \[0, 0\.5\]; got str"),
     ("charge tensor that requires grad", lambda: magnetic_laplacian(_g(), torch.tensor(0.2, requires_grad=True)),
-     r"charge must be one real number in \[0, 0\.5\] for a fixed operator; got a tensor .* requires_grad=True \(for a learned charge use magnetic_matmul\)"),
+     r"charge must be one real number in \[0, 0\.5\] for a fixed operator; got a tensor .* requires_grad=True \(for a learned charge use magnetic_product / magnetic_matmul with the tensor, or "
+     r"MagneticFilter\(charge=LearnedCharge\(start=\.\.\.\)\)\)"),
     ("charge tensor with several values", lambda: magnetic_laplacian(_g(), torch.tensor([0.1, 0.2])),
      r"got a tensor of shape \(2,\)"),
     ("unknown phase", lambda: magnetic_laplacian(_g(), 0.25, phase="angle"),
@@ -288,6 +291,31 @@ CASES = [
      r"labels is on the meta device"),
     ("block sizes on the meta device", lambda: directed_block_model(torch.ones(2, dtype=torch.int64, device="meta"), 0.1, 0.5),
      r"sizes is on the meta device"),
+    # --- layers (issue 12)
+    ("MagneticFilter charge tensor that requires grad",
+     lambda: MagneticFilter(2, 2, order=1, charge=torch.tensor(0.1, requires_grad=True)),
+     r"charge is a tensor that requires grad \(\[0\.1.*\]\); a fixed charge would silently drop its gradient\. "
+     r"To learn the charge pass charge=LearnedCharge\(start=\.\.\.\)"),
+    ("MagneticFilter charge as text", lambda: MagneticFilter(2, 2, order=1, charge="0.1"),
+     r"charge must be a real number in \[0, 0\.5\], a non-empty list of them, or LearnedCharge\(start=\.\.\.\); "
+     r"got the text '0\.1' \(pass a number\)"),
+    ("learned charge start below what float32 reaches", lambda: LearnedCharge(start=1e-9),
+     r"a learned charge must start inside the open interval \(0, 0\.5\).*got 1e-09"),
+    ("float64 features into a float32 DiffusionScattering with mixing",
+     lambda: DiffusionScattering(2, 2, out_channels=3)(torch.ones(3, 2, dtype=torch.float64), diffusion(_g(), dtype=torch.float64)),
+     r"x has dtype torch\.float64 but the layer's parameters are torch\.float32; use the same precision"),
+    ("float64 features into a float32 BandMix", lambda: BandMix(2, 3)(torch.ones(3, 2, dtype=torch.float64), _g()),
+     r"x has dtype torch\.float64 but the layer's parameters are torch\.float32"),
+    ("meta features into BandMix", lambda: BandMix(2, 3)(torch.ones(3, 2, device="meta"), _g()),
+     r"x is on the meta device, which holds shapes but no values"),
+    ("meta features into MomentReadout", lambda: MomentReadout()(torch.ones(3, 2, device="meta")),
+     r"x is on the meta device, which holds shapes but no values; MomentReadout needs the values"),
+    ("meta features into ModReLU", lambda: ModReLU(2)(torch.ones(3, 2, dtype=torch.complex64, device="meta")),
+     r"z is on meta but ModReLU's bias is on cpu; move one of them"),
+    ("integer features into DiffusionWavelets on the walk", lambda: DiffusionWavelets(2)(torch.ones(3, 2, dtype=torch.int64), random_walk(_g())),
+     r"x dtype must be float32, float64, complex64 or complex128; got torch\.int64 \(convert integer features"),
+    ("integer parameter dtype for ScaleSelector", lambda: ScaleSelector(4, 2, dtype=torch.int64),
+     r"dtype must be torch\.float32 or torch\.float64 \(or complex64/complex128 for that precision\); got torch\.int64"),
     ("split fraction too small for one link", lambda: split_links(_g(), "direction", 0.1, 0.4),
      r"val_fraction = 0\.1 of the 3 eligible links rounds to 0 links; raise val_fraction to at least 0\.167"),
 ]

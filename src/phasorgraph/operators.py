@@ -77,11 +77,14 @@ def _check_graph(graph, what: str = "this operator") -> DirectedGraph:
 
 def _check_charge(charge) -> float:
     if isinstance(charge, torch.Tensor):
-        if charge.requires_grad or charge.numel() != 1 or charge.is_complex():
+        # the charge-tensor rule (the same in MagneticFilter): a tensor that requires grad is
+        # refused, never detached in silence; learning goes through magnetic_product / LearnedCharge
+        if charge.requires_grad or charge.numel() != 1 or charge.is_complex() or charge.device.type == "meta":
             raise GraphInputError(
                 f"charge must be one real number in [0, 0.5] for a fixed operator; got a tensor of "
-                f"shape {tuple(charge.shape)}, dtype {charge.dtype}, requires_grad={charge.requires_grad} "
-                f"(for a learned charge use magnetic_matmul)"
+                f"shape {tuple(charge.shape)}, dtype {charge.dtype}, requires_grad={charge.requires_grad}"
+                f"{' on the meta device' if charge.device.type == 'meta' else ''} (for a learned charge use "
+                f"magnetic_product / magnetic_matmul with the tensor, or MagneticFilter(charge=LearnedCharge(start=...)))"
             )
         charge = float(charge)
     if isinstance(charge, bool) or not isinstance(charge, numbers.Real):

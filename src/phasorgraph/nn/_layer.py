@@ -64,6 +64,11 @@ def check_features(x, num_rows: int, in_channels: Optional[int] = None, precisio
 
     ``num_rows`` is the graph-like object's (or operator's) ``num_rows``: all nodes of a whole
     graph, the owned rows of a shard.
+
+    The integer-feature rule of every layer: features must be float32, float64, complex64 or
+    complex128; integer, bool and half tensors are refused with one message, never cast (a cast
+    hid mistakes: the walk-based layers turned an int64 similarity scale into inf / NaN).
+    Features on the meta device (no values) are refused too.
     """
     if not isinstance(x, torch.Tensor):
         raise GraphInputError(f"{name} must be a torch.Tensor of shape {shape}; got {type(x).__name__}")
@@ -76,9 +81,17 @@ def check_features(x, num_rows: int, in_channels: Optional[int] = None, precisio
         raise GraphInputError(
             f"{name} must have in_channels = {in_channels} columns{again}; got shape {tuple(x.shape)}"
         )
+    if x.dtype not in REAL_OF:
+        # one rule for every layer: integer, bool and half features are refused, never cast
+        # (a cast would hide a wrong column or truncate a diffusion scale to an integer)
+        raise GraphInputError(
+            f"{name} dtype must be float32, float64, complex64 or complex128; got {x.dtype} (convert "
+            f"integer features with {name}.float() or {name}.to(layer dtype))"
+        )
+    if x.device.type == "meta":
+        raise GraphInputError(f"{name} is on the meta device, which holds shapes but no values; pass "
+                              f"features with values")
     if precision is not None:
-        if x.dtype not in REAL_OF:
-            raise GraphInputError(f"{name} dtype must be float32, float64, complex64 or complex128; got {x.dtype}")
         if REAL_OF[x.dtype] != precision:
             raise GraphInputError(
                 f"{name} has dtype {x.dtype} but the layer's parameters are {precision}; use the same "

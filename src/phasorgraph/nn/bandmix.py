@@ -12,7 +12,7 @@ from torch import nn
 from .. import operators
 from ..errors import GraphInputError
 from ._diffusion import diffusion_powers, dyadic_bands
-from ._layer import check_count, check_features, check_graph_like
+from ._layer import check_count, check_features, check_graph_like, factory_kwargs
 
 __all__ = ["BandMix"]
 
@@ -97,7 +97,7 @@ class BandMix(nn.Module):
         self.low_pass_steps = _check_steps(low_pass_steps)
         self.scales = check_count("scales", scales)
         self.num_channels = len(self.low_pass_steps) + self.scales + 1
-        factory = {"device": device, "dtype": dtype}
+        factory = factory_kwargs(device, dtype)
         self.weight = nn.Parameter(torch.empty(self.num_channels, self.out_channels, self.in_channels, **factory))
         if bias:
             self.bias = nn.Parameter(torch.empty(self.num_channels, self.out_channels, **factory))
@@ -126,7 +126,8 @@ class BandMix(nn.Module):
     def channels(self, x: torch.Tensor, graph) -> torch.Tensor:
         """The stacked input channels (N, C, F) before the maps: low-pass first, then band-pass."""
         graph = check_graph_like(graph, "BandMix")
-        x = check_features(x, graph.num_rows, self.in_channels, shape="(N, F)", restate_shape=False)
+        x = check_features(x, graph.num_rows, self.in_channels, self.weight.dtype, self.weight.device,
+                           shape="(N, F)", restate_shape=False)
         if x.is_complex() or x.dtype not in (torch.float32, torch.float64):
             raise GraphInputError(f"x must be real float32 or float64 for BandMix; got dtype {x.dtype}")
         adj, diff = self._graph_operators(graph, x.dtype, x.device)

@@ -2,7 +2,8 @@ r"""Complex activations from the literature, a name-to-class table, and ComplexT
 
 Every activation maps complex features elementwise to complex features of the same shape and
 dtype, is NaN-free at z = 0 (value and gradient), and refuses real input with a clear error
-(a real tensor here usually means a head was applied too early).
+(a real tensor here usually means a head was applied too early). A NaN entry stays NaN (a gate
+never turns it into 0: garbage in stays visible where it belongs, and only there).
 
 ========================  ==================================================================
 name                      formula
@@ -44,6 +45,11 @@ def _check_complex(z, layer: str) -> torch.Tensor:
             f"(use torch.nn.ReLU for real features)"
         )
     return z
+
+
+def _nan_mask(z: torch.Tensor) -> torch.Tensor:
+    """Entries with a NaN real or imaginary part (gates pass them through unchanged)."""
+    return torch.isnan(z.real) | torch.isnan(z.imag)
 
 
 def _safe_modulus(z: torch.Tensor):
@@ -98,6 +104,11 @@ class ModReLU(nn.Module):
             raise GraphInputError(
                 f"z must have num_features = {self.num_features} entries on its last axis; got shape {tuple(z.shape)}"
             )
+        if z.device != self.bias.device:
+            raise GraphInputError(
+                f"z is on {z.device} but ModReLU's bias is on {self.bias.device}; move one of them "
+                f"(module.to(device) or z.to(device))"
+            )
         r, nonzero, safe = _safe_modulus(z)
         scale = torch.where(nonzero, torch.relu(safe + self.bias) / safe, torch.zeros_like(safe))
         return z * scale
@@ -126,7 +137,8 @@ class ZReLU(nn.Module):
     r"""zReLU: z where :math:`0 \le \arg z \le \pi/2` (Re z >= 0 and Im z >= 0), else 0.
 
     Passes the first quadrant unchanged (Guberman, On complex valued convolutional neural
-    networks, 2016). Points on the two bounding half-axes (and z = 0) are kept.
+    networks, 2016). Points on the two bounding half-axes (and z = 0) are kept; an entry with a
+    NaN part is passed through (NaN stays NaN).
 
     Shape: z (...) complex; output same shape and dtype.
 
@@ -138,7 +150,7 @@ class ZReLU(nn.Module):
 
     def forward(self, z: torch.Tensor) -> torch.Tensor:
         z = _check_complex(z, "ZReLU")
-        keep = (z.real >= 0) & (z.imag >= 0)
+        keep = (z.real >= 0) & (z.imag >= 0) | _nan_mask(z)  # NaN stays NaN, never 0
         return torch.where(keep, z, torch.zeros_like(z))
 
 
@@ -167,7 +179,8 @@ class Cardioid(nn.Module):
 class RealPartGate(nn.Module):
     r"""Real-part gate: :math:`f(z) = z` where :math:`\mathrm{Re}\,z \ge 0`, else 0.
 
-    Keeps whole complex numbers (phase included) on the right half-plane.
+    Keeps whole complex numbers (phase included) on the right half-plane; an entry with a NaN
+    part is passed through (NaN stays NaN).
 
     Shape: z (...) complex; output same shape and dtype.
 
@@ -179,7 +192,8 @@ class RealPartGate(nn.Module):
 
     def forward(self, z: torch.Tensor) -> torch.Tensor:
         z = _check_complex(z, "RealPartGate")
-        return torch.where(z.real >= 0, z, torch.zeros_like(z))
+        keep = (z.real >= 0) | _nan_mask(z)  # NaN stays NaN, never 0
+        return torch.where(keep, z, torch.zeros_like(z))
 
 
 #: activation name -> class

@@ -23,6 +23,9 @@ import numbers
 import weakref
 from typing import Optional, Sequence
 
+import numpy as np
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
 import torch
 from torch import nn
 
@@ -46,11 +49,45 @@ def _check_max_eigenvalue(value, name: str = "max_eigenvalue") -> Optional[float
     return float(value)
 
 
+def _chebyshev_rescaling(op: SparseOperator, max_eigenvalue: Optional[float]) -> tuple:
+    r"""``(alpha, beta)`` with :math:`\tilde L = \alpha L + \beta I = 2 (L - a) / (b - a) - I`.
+
+    ``a`` is the lower end of the operator's known spectrum interval (``op.spectrum[0]``: 0 for
+    Laplacians, -1 for renormalized adjacencies, :math:`-d_{max}` for a magnetic adjacency), so
+    an indefinite operator is mapped onto [-1, 1] as well, instead of being rescaled as if its
+    spectrum started at 0 (its terms would then grow geometrically with k). ``b`` is
+    ``max_eigenvalue`` when given, else the largest eigenvalue of ``op`` (computed once and
+    remembered on the operator). An operator with ``b = a`` (the zero Laplacian of a graph
+    without edges) gives :math:`\tilde L = -I`.
+    """
+    if op.spectrum is None:
+        raise GraphInputError(
+            f"op (kind {op.kind!r}) carries no spectrum interval, so ChebyshevFilter cannot map its "
+            f"eigenvalues onto [-1, 1]; build it with SparseOperator(..., spectrum=(lower, upper)) holding "
+            f"every eigenvalue (lower = 0 for a Laplacian), or use a builder of phasorgraph.operators, "
+            f"which sets it"
+        )
+    a = float(op.spectrum[0])
+    b = largest_eigenvalue(op) if max_eigenvalue is None else float(max_eigenvalue)
+    if b < a - 1e-12 * max(1.0, abs(a)):
+        raise GraphInputError(
+            f"max_eigenvalue {b:.6g} lies below the lower end {a:.6g} of op's spectrum interval "
+            f"{op.spectrum} (kind {op.kind!r}); pass a max_eigenvalue in [{a:.6g}, {op.spectrum[1]:.6g}]"
+        )
+    width = b - a
+    if width <= 1e-12 * max(1.0, abs(a), abs(b)):
+        return 2.0, -1.0 - 2.0 * a  # L = a I: L~ = -I
+    return 2.0 / width, -(b + a) / width
+
+
 class ChebyshevFilter(ChebyshevBase):
     r"""Chebyshev polynomial filter :math:`Y = \sum_{k=0}^{K} T_k(\tilde L)\, X W_k + b`.
 
-    :math:`\tilde L = 2 L / \lambda_{max} - I` maps the spectrum :math:`[0, \lambda_{max}]` of a
-    positive semidefinite operator L onto [-1, 1]; the terms follow the recursion
+    :math:`\tilde L = 2 (L - a) / (\lambda_{max} - a) - I` maps the spectrum
+    :math:`[a, \lambda_{max}]` of L onto [-1, 1], with a the lower end of the operator's known
+    spectrum interval (``op.spectrum[0]``): 0 for Laplacians, so :math:`\tilde L = 2 L /
+    \lambda_{max} - I`; -1 for the renormalized adjacency; :math:`-d_{max}` for a magnetic
+    adjacency. An operator without a spectrum interval is refused. The terms follow the recursion
     :math:`T_0 = X`, :math:`T_1 = \tilde L X`, :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}`
     (Defferrard et al. 2016; recursion as in Hammond et al. 2011). K sparse products per
     forward, K more in backward (the Hermitian kernel), memory O(nnz + K N C_in).
@@ -60,8 +97,8 @@ class ChebyshevFilter(ChebyshevBase):
     :func:`phasorgraph.spectral.largest_eigenvalue` (computed once per operator and remembered
     there). Pass ``max_eigenvalue=2`` for normalized Laplacians
     (their spectrum lies in [0, 2]) to skip the eigenvalue computation. An operator whose largest
-    eigenvalue is 0 (the Laplacian of a graph without edges) is taken with
-    :math:`\lambda_{max} = 1`, i.e. :math:`\tilde L = -I`.
+    eigenvalue equals the lower end a (the Laplacian of a graph without edges) gives
+    :math:`\tilde L = -I`.
 
     Args:
         in_channels: C_in.
@@ -123,19 +160,11 @@ class ChebyshevFilter(ChebyshevBase):
         lam = _check_max_eigenvalue(max_eigenvalue, "max_eigenvalue (forward)")
         if lam is None:
             lam = self.max_eigenvalue
-        if lam is None:
-            lam = largest_eigenvalue(op)
-            if lam < -1e-12:
-                raise GraphInputError(
-                    f"op has largest eigenvalue {lam:.3g} < 0; ChebyshevFilter expects a positive "
-                    f"semidefinite operator (a Laplacian) or an explicit max_eigenvalue > 0"
-                )
-            if lam <= 1e-12:
-                lam = 1.0  # the zero operator: L~ = -I whatever max_eigenvalue > 0 is used
         if op.num_nodes == 0:
             return empty_output(x, self.out_channels, output_dtype(x, op, self._weights()), self.parameters())
-        # L~ = 2 L / lambda_max - I
-        return self._filter(x, [(op, 2.0 / lam, -1.0)])
+        # L~ = 2 (L - a) / (lambda_max - a) - I on the operator's spectrum interval [a, lambda_max]
+        alpha, beta = _chebyshev_rescaling(op, lam)
+        return self._filter(x, [(op, alpha, beta)])
 
 
 # ---------------------------------------------------------------------- renormalized
@@ -237,6 +266,43 @@ def _cached_basis(op: SparseOperator, dtype: torch.dtype, device, max_nodes: int
     if key not in entry:
         entry[key] = entry["U"].to(device=device, dtype=dtype)
     return entry["lam"], entry[key]
+
+
+def _components(op: SparseOperator) -> torch.Tensor:
+    """(N,) int64 connected-component label of each node in the pattern of ``op`` (cached with the basis).
+
+    An operator with a dense low-rank term couples every node: one component.
+    """
+    entry = _FOURIER_CACHE.get(op)
+    labels = entry.get("components") if entry is not None else None
+    if labels is None:
+        n = op.num_rows
+        if op.low_rank is not None:
+            labels = torch.zeros(n, dtype=torch.int64)
+        else:
+
+            m = op.matrix.to("cpu")
+            crow, col = m.crow_indices().numpy(), m.col_indices().numpy()
+            pattern = sp.csr_matrix((np.ones(col.size, dtype=np.int8), col, crow), shape=(n, n))
+            labels = torch.as_tensor(connected_components(pattern, directed=False)[1].astype(np.int64))
+        if entry is not None:
+            entry["components"] = labels
+    return labels
+
+
+def _poison_components(out: torch.Tensor, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
+    """NaN on every row of ``out`` whose connected component holds a non-finite entry of ``x``.
+
+    The dense Fourier basis mixes all nodes (a product ``0 * NaN`` is NaN), so the filter runs
+    on x with its non-finite entries set to 0 and the garbage is put back, as NaN, exactly on
+    the components it reaches through the operator: no other component sees it.
+    """
+    bad_rows = ~torch.isfinite(x).all(dim=1).cpu()
+    labels = _components(op)
+    hit = torch.zeros(int(labels.max()) + 1 if labels.numel() else 0, dtype=torch.bool)
+    hit[labels[bad_rows]] = True
+    rows = hit[labels].to(out.device)
+    return torch.where(rows.unsqueeze(1), torch.full_like(out, float("nan")), out)
 
 
 def _hat_basis(lam: torch.Tensor, knots: torch.Tensor) -> torch.Tensor:
@@ -416,8 +482,10 @@ class SpectralMultiplier(nn.Module):
                     f"op has eigenvalues in [{float(lam[0]):.4g}, {float(lam[-1]):.4g}] but the knots cover "
                     f"interval = ({low}, {high}); build the layer with a wider interval"
                 )
+        finite = bool(torch.isfinite(x).all())
+        x_in = x if finite else torch.where(torch.isfinite(x), x, torch.zeros_like(x))
         Uh = U.conj().T if U.is_complex() else U.T
-        xh = bilinear(torch.matmul, Uh, x)                       # (N, C_in)
+        xh = bilinear(torch.matmul, Uh, x_in)                    # (N, C_in)
         if self.per_eigenvalue:
             yh = bilinear(lambda a, b: torch.bmm(a.unsqueeze(1), b).squeeze(1), xh, self.weight)
         else:
@@ -426,4 +494,6 @@ class SpectralMultiplier(nn.Module):
             z = (B.unsqueeze(2) * xh.unsqueeze(1)).reshape(n, -1)              # (N, K C_in)
             yh = bilinear(torch.matmul, z, self.weight.reshape(-1, self.out_channels))
         out = bilinear(torch.matmul, U, yh)
+        if not finite:  # garbage in stays visible where it belongs: its own component only
+            out = _poison_components(out, x, op)
         return out if self.bias is None else out + self.bias

@@ -22,8 +22,24 @@ _CHARGE_RULE = "a real number in [0, 0.5], a non-empty list of them, or LearnedC
 
 
 def _charge_values(charge, learned: bool) -> tuple:
-    """A tuple of floats in [0, 0.5] (open (0, 0.5) when learned) and whether one number was given."""
+    """A tuple of floats in [0, 0.5] (open (0, 0.5) when learned) and whether one number was given.
+
+    The charge-tensor rule (shared with :mod:`phasorgraph.operators`): a tensor that requires
+    grad is refused, never detached in silence (it would look learned and stay fixed); a
+    learned charge is asked for with :class:`LearnedCharge`. A tensor without grad is read as
+    its numbers. Text is refused whole (never read character by character).
+    """
+    if isinstance(charge, str):
+        raise GraphInputError(f"charge must be {_CHARGE_RULE}; got the text {charge!r} (pass a number)")
     if isinstance(charge, torch.Tensor):
+        if charge.requires_grad:
+            raise GraphInputError(
+                f"charge is a tensor that requires grad ({charge.detach().cpu().reshape(-1).tolist()}); a fixed "
+                f"charge would silently drop its gradient. To learn the charge pass "
+                f"charge=LearnedCharge(start=...); for a fixed charge pass a number (or charge.detach())"
+            )
+        if charge.device.type == "meta" or charge.is_complex():
+            raise GraphInputError(f"charge must be {_CHARGE_RULE}; got a tensor of dtype {charge.dtype} on {charge.device}")
         charge = charge.detach().cpu().tolist()
     scalar = isinstance(charge, numbers.Real) and not isinstance(charge, bool)
     values = [charge] if scalar else charge
@@ -40,13 +56,50 @@ def _charge_values(charge, learned: bool) -> tuple:
         q = float(q)
         if not 0.0 <= q <= 0.5:
             raise GraphInputError(f"charge must lie in [0, 0.5]; got {q}")
-        if learned and not 0.0 < q < 0.5:
+        if learned and not _Q_MIN[torch.float32] <= q <= 0.5 - _Q_MIN[torch.float32]:
             raise GraphInputError(
                 f"a learned charge must start inside the open interval (0, 0.5), where its map "
-                f"q = 0.5 * sigmoid(u) is defined; got {q} (start at a small value such as 0.02)"
+                f"q = 0.5 * sigmoid(u) is defined (in float32 it reaches [{_Q_MIN[torch.float32]:.2g}, "
+                f"0.5 - {_Q_MIN[torch.float32]:.2g}]); got {q} (start at a small value such as 0.02)"
             )
         out.append(q)
     return tuple(out), scalar
+
+
+#: |u| bound of the charge logit: sigmoid(+-bound) stays strictly inside (0, 1) in the dtype,
+#: with a derivative of about exp(-bound) > 0 (ln(1 / eps) - 1: 14.9 in float32, 35.0 in float64)
+_LOGIT_BOUND = {dt: math.log(1.0 / torch.finfo(dt).eps) - 1.0 for dt in (torch.float32, torch.float64)}
+#: the smallest learned charge, 0.5 sigmoid(-bound) (about 1.6e-7 in float32, 3.0e-16 in float64)
+_Q_MIN = {dt: 0.5 / (1.0 + math.exp(b)) for dt, b in _LOGIT_BOUND.items()}
+
+
+def _learned_charge(logit: torch.Tensor) -> torch.Tensor:
+    r""":math:`q = \tfrac12 \sigma(\mathrm{clamp}(u, -c, c))`, strictly inside (0, 0.5), gradient alive.
+
+    A large learning rate can push the logit u far out (u = 1e4, say), where
+    :math:`\sigma(u)` is exactly 1 in floating point and its derivative exactly 0: the charge
+    would sit at 0.5 for good. The forward clamps u to :math:`\pm c` (c = ``_LOGIT_BOUND``, where
+    :math:`\sigma` still differs from 0 and 1 in the dtype) and the backward passes the gradient
+    through the clamp unchanged (straight-through), so dq/du is never 0 and the loss can pull
+    the charge back.
+    """
+    bound = _LOGIT_BOUND.get(logit.dtype, _LOGIT_BOUND[torch.float32])
+    return 0.5 * torch.sigmoid(_ClampStraightThrough.apply(logit, bound))
+
+
+class _ClampStraightThrough(torch.autograd.Function):
+    """Forward ``clamp(u, -bound, bound)``; backward the identity (the gradient passes unchanged).
+
+    (Written as a Function: ``u + (clamp(u) - u).detach()`` cancels catastrophically for large u.)
+    """
+
+    @staticmethod
+    def forward(ctx, u, bound: float):
+        return u.clamp(-bound, bound)
+
+    @staticmethod
+    def backward(ctx, grad):
+        return grad, None
 
 
 class LearnedCharge:
@@ -117,7 +170,11 @@ class MagneticFilter(ChebyshevBase):
       never reached, and near 0, :math:`d \log q / du = 1 - 2q \approx 1`, so a small starting
       charge grows geometrically when the loss asks for it (a map such as
       :math:`q = \tfrac14 (1 - \cos\theta)` has :math:`dq/d\theta = 0` exactly at q = 0 and can
-      stay stuck there). The start must therefore lie in the open interval (0, 0.5). The
+      stay stuck there). In floating point :math:`\sigma(u)` rounds to exactly 0 or 1 for large
+      |u|, so the forward clamps u to :math:`\pm(\ln(1/\epsilon) - 1)` (14.9 in float32, 35.0
+      in float64) with the gradient passed straight through: even after a huge learning-rate
+      step q stays strictly inside (0, 0.5), at least 1.6e-7 from either end in float32, and
+      its gradient never vanishes. The start must therefore lie in the open interval (0, 0.5). The
       operator is then rebuilt from q on every forward through ``graph.magnetic_product``
       (:func:`phasorgraph.operators.magnetic_product`; values built once per forward,
       differentiable in q). :meth:`freeze_charge` turns a learned charge into a fixed one.
@@ -219,7 +276,7 @@ class MagneticFilter(ChebyshevBase):
     def charge(self) -> torch.Tensor:
         """Current charge(s): 0-dim if one float was given, else (G,); differentiable when learned."""
         if self.learns_charge:
-            q = 0.5 * torch.sigmoid(self.charge_logit)
+            q = _learned_charge(self.charge_logit)
         else:
             q = torch.tensor(self.initial_charge, dtype=self.weight.dtype, device=self.weight.device)
         return q[0] if self._scalar_charge else q
@@ -229,7 +286,7 @@ class MagneticFilter(ChebyshevBase):
         if not self.learns_charge:
             return self.initial_charge
         with torch.no_grad():
-            q = 0.5 * torch.sigmoid(self.charge_logit.detach().to(device="cpu", dtype=torch.float64))
+            q = _learned_charge(self.charge_logit.detach().to(device="cpu"))
         return tuple(float(v) for v in q)
 
     def freeze_charge(self) -> "MagneticFilter":

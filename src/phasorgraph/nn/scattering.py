@@ -17,7 +17,7 @@ from torch import nn
 from ..errors import GraphInputError
 from ..sparse import SparseOperator
 from ._diffusion import check_diffusion_operator, diffusion_powers, dyadic_bands
-from ._layer import check_count, check_features
+from ._layer import check_count, check_features, factory_kwargs
 
 __all__ = ["DiffusionScattering"]
 
@@ -112,7 +112,7 @@ class DiffusionScattering(nn.Module):
         if self.order == 2:
             self.paths += [(j1, j2) for j1 in range(J + 1) for j2 in range(j1 + 1, J + 1)]
         self.num_coefficients = len(self.paths)
-        factory = {"device": device, "dtype": dtype}
+        factory = factory_kwargs(device, dtype)
         if self.out_channels is not None:
             self.weight = nn.Parameter(torch.empty(self.out_channels, self.num_coefficients * self.in_channels, **factory))
             if bias:
@@ -140,7 +140,9 @@ class DiffusionScattering(nn.Module):
     def coefficients(self, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
         """The unmixed coefficients, (N, K, F) real, in the order of ``paths``."""
         T, scale = check_diffusion_operator(op)
-        x = check_features(x, T.num_rows, self.in_channels, shape="(N, F)", restate_shape=False)
+        w = self.weight
+        x = check_features(x, T.num_rows, self.in_channels, None if w is None else w.dtype,
+                           None if w is None else w.device, shape="(N, F)", restate_shape=False)
         J, n, F = self.scales, x.shape[0], x.shape[1]
         first = dyadic_bands(T, scale, x, J)  # (N, J + 2, F): Psi_0..Psi_J, Phi_J
         zeroth = _real(first[:, -1] if self.lowpass else x)

@@ -15,7 +15,7 @@ from torch import nn
 
 from ..sparse import SparseOperator
 from ._diffusion import check_diffusion_operator, diffusion_powers, dyadic_bands
-from ._layer import check_count, check_features
+from ._layer import check_count, check_features, factory_kwargs
 
 __all__ = ["DiffusionWavelets", "ScaleSelector"]
 
@@ -130,7 +130,7 @@ class ScaleSelector(nn.Module):
         super().__init__()
         self.max_steps = check_count("max_steps", max_steps)
         self.scales = check_count("scales", scales)
-        factory = {"device": device, "dtype": dtype}
+        factory = factory_kwargs(device, dtype)
         self.logits = nn.Parameter(torch.empty(self.scales, self.max_steps + 1, **factory))
         self.reset_parameters()
 
@@ -152,7 +152,8 @@ class ScaleSelector(nn.Module):
 
     def forward(self, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
         T, scale = check_diffusion_operator(op)
-        x = check_features(x, T.num_rows, shape="(N, F)", restate_shape=False)
+        x = check_features(x, T.num_rows, None, self.logits.dtype, self.logits.device, shape="(N, F)",
+                           restate_shape=False)
         powers = torch.stack(diffusion_powers(T, scale, x, range(self.max_steps + 1)), dim=1)  # (N, t+1, F)
         F = self.selection.to(powers.dtype)  # real weights; cast to complex for a magnetic T
         boundaries = torch.einsum("ntf,jt->njf", powers, F)  # (N, S, F)
