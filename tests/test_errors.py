@@ -128,7 +128,7 @@ CASES = [
     ("charge tensor with several values", lambda: magnetic_laplacian(_g(), torch.tensor([0.1, 0.2])),
      r"got a tensor of shape \(2,\)"),
     ("unknown phase", lambda: magnetic_laplacian(_g(), 0.25, phase="angle"),
-     r"phase must be one of \('difference', 'sign'\); got 'angle'"),
+     r"phase must be one of \('difference', 'sign', 'relative'\); got 'angle'"),
     # --- dtypes
     ("complex dtype for a real operator", lambda: normalized_laplacian(_g(), dtype=torch.complex64),
      r"dtype must be torch\.float32 or torch\.float64 for this real operator; got torch\.complex64"),

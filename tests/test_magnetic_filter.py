@@ -209,7 +209,7 @@ def test_other_bad_arguments():
     g, _ = reference_graph()
     with pytest.raises(GraphInputError, match=r"order must be an integer >= 0; got -2"):
         MagneticFilter(2, 2, order=-2, charge=0.25)
-    with pytest.raises(GraphInputError, match=r"phase must be one of \('difference', 'sign'\); got 'angle'"):
+    with pytest.raises(GraphInputError, match=r"phase must be one of \('difference', 'sign', 'relative'\); got 'angle'"):
         MagneticFilter(2, 2, 1, charge=0.25, phase="angle")
     layer = MagneticFilter(3, 2, 1, charge=0.25)
     with pytest.raises(GraphInputError, match=r"x must have num_nodes = 7 rows .*got shape \(8, 3\)"):

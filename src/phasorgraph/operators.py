@@ -5,8 +5,10 @@ Conventions (A[u, v] = w for an edge u -> v):
 * symmetrized adjacency :math:`A_s = (A + A^T) / 2`, degrees :math:`d = A_s \mathbf{1}`;
 * every :math:`D^{-1/2}` or :math:`D^{-1}` of a zero degree is taken as 0, so isolated nodes
   never produce NaN or inf;
-* the magnetic phase :math:`\Theta = 2\pi q (A - A^T)` (``phase="difference"``) or
-  :math:`2\pi q\, \mathrm{sign}(A - A^T)` (``phase="sign"``).
+* the magnetic phase :math:`\Theta = 2\pi q (A - A^T)` (``phase="difference"``),
+  :math:`2\pi q\, \mathrm{sign}(A - A^T)` (``phase="sign"``) or
+  :math:`2\pi q\, (A - A^T) / (A + A^T)` entrywise on the non-zeros of :math:`A + A^T`
+  (``phase="relative"``, the net-flow fraction: free of the weights' units).
 
 Every function validates its arguments once, then works vectorized over the non-zeros (no
 Python loop over edges), computes in float64 and returns a CSR :class:`SparseOperator` of the
@@ -20,6 +22,7 @@ from __future__ import annotations
 
 import math
 import numbers
+import warnings
 from typing import NamedTuple, Optional
 
 import numpy as np
@@ -28,7 +31,7 @@ import torch
 
 from ._limits import check_node_count
 from ._checks import check_choice, check_flag
-from .errors import GraphInputError, _value_text
+from .errors import GraphInputError, PhaseWrapWarning, _value_text
 from .graph import DirectedGraph
 from .sparse import PatternOperator, SparseOperator, csr_matrix
 
@@ -48,7 +51,7 @@ __all__ = [
     "magnetic_product",
 ]
 
-_PHASES = ("difference", "sign")
+_PHASES = ("difference", "sign", "relative")
 _REAL = (torch.float32, torch.float64)
 _COMPLEX = (torch.complex64, torch.complex128)
 _TO_COMPLEX = {torch.float32: torch.complex64, torch.float64: torch.complex128}
@@ -236,9 +239,51 @@ def _assemble_unsorted(n: int, rows, cols, vals, dtype, diag: Optional[torch.Ten
     return csr_matrix(crow, (uniq % max(n, 1)).contiguous(), summed.to(dtype), (n, n))
 
 
-def _phase_angles(anti: torch.Tensor, q: float | torch.Tensor, phase: str):
-    base = anti if phase == "difference" else torch.sign(anti)
-    return 2 * math.pi * q * base
+def _phase_base(anti: torch.Tensor, sym: torch.Tensor, phase: str) -> torch.Tensor:
+    """Theta / (2 pi q) on the union pattern: A - A^T, its sign, or (A - A^T) / (A + A^T).
+
+    ``sym`` is :math:`A_s = (A + A^T) / 2`, so the relative base is ``anti / (2 sym)``; it lies
+    in [-1, 1] (non-negative weights) and is 0 where ``sym`` is 0.
+    """
+    if phase == "difference":
+        return anti
+    if phase == "sign":
+        return torch.sign(anti)
+    out = torch.zeros_like(anti)
+    pos = sym > 0
+    out[pos] = anti[pos] / (2 * sym[pos])
+    return out
+
+
+def _phase_angles(anti: torch.Tensor, sym: torch.Tensor, q: float | torch.Tensor, phase: str):
+    return 2 * math.pi * q * _phase_base(anti, sym, phase)
+
+
+def _warn_if_wrapped(graph: DirectedGraph, q: float, phase: str) -> None:
+    r"""Warn (PhaseWrapWarning) when phase="difference" turns some edge pair past pi.
+
+    Rule: :math:`2\pi q \max |A - A^T| > \pi`, i.e. :math:`q \max|A - A^T| > 1/2`. Unit
+    weights never trigger it for q in [0, 0.5].
+    """
+    if phase != "difference" or q <= 0:
+        return
+    largest = graph._cache.get("max_net_flow")
+    if largest is None:
+        anti = _parts(graph)[3]
+        largest = float(anti.abs().max()) if anti.numel() else 0.0
+        graph._cache["max_net_flow"] = largest
+    if q * largest > 0.5 and not graph._cache.get("wrap_warned"):
+        graph._cache["wrap_warned"] = True  # once per graph: a learned charge changes every step
+        warnings.warn(
+            f"phase='difference' with charge {q:g} wraps: the largest net flow |A[u, v] - A[v, u]| is "
+            f"{largest:.4g}, above 1 / (2 q) = {1 / (2 * q):.4g}, so its phase passes pi (a flow u -> v "
+            f"then looks like one v -> u, and flows that differ by 1 / q = {1 / q:.4g} look alike). Use "
+            f"phase='relative' (the net-flow fraction (A - A^T) / (A + A^T), free of units), or "
+            f"compress the weights so that q * max |A - A^T| <= 1/2 (e.g. DirectedGraph.from_table(..., "
+            f"weight_transform='rank'), or log1p with a charge below {1 / (2 * math.log1p(largest)):.3g}). "
+            f"Dividing by the largest weight does not help heavy-tailed weights: most phases become ~0.",
+            PhaseWrapWarning, stacklevel=3,
+        )
 
 
 def _phasors(magnitude: np.ndarray, angle: np.ndarray, dtype: torch.dtype) -> torch.Tensor:
@@ -271,7 +316,7 @@ def _phasors(magnitude: np.ndarray, angle: np.ndarray, dtype: torch.dtype) -> to
 
 def _magnetic_values(graph: DirectedGraph, q: float, phase: str) -> tuple:
     rows, cols, sym, anti, degree = _parts(graph)
-    angle = _phase_angles(anti, q, phase)
+    angle = _phase_angles(anti, sym, q, phase)
     return rows, cols, torch.polar(sym, angle), degree
 
 
@@ -394,20 +439,25 @@ def magnetic_adjacency(graph: DirectedGraph, charge: float = 0.25, *, phase: str
                        dtype: Optional[torch.dtype] = None) -> SparseOperator:
     r"""Magnetic (Hermitian) adjacency :math:`H(q) = A_s \odot \exp(i \Theta)`.
 
-    :math:`\Theta = 2\pi q (A - A^T)` for ``phase="difference"``, or
-    :math:`2\pi q\,\mathrm{sign}(A - A^T)` for ``phase="sign"``. For a one-way unit edge
-    u -> v, :math:`H[u, v] = \tfrac12 e^{+i 2\pi q}` and :math:`H[v, u] = \overline{H[u, v]}`.
-    Reciprocal edges of equal weight carry no phase; q = 0 gives :math:`A_s`; reversing every
-    edge conjugates H.
+    :math:`\Theta = 2\pi q (A - A^T)` for ``phase="difference"``,
+    :math:`2\pi q\,\mathrm{sign}(A - A^T)` for ``phase="sign"``, or
+    :math:`\Theta_{uv} = 2\pi q (A_{uv} - A_{vu}) / (A_{uv} + A_{vu})` for
+    ``phase="relative"`` (the net-flow fraction, in :math:`[-2\pi q, 2\pi q]` whatever the
+    units; unchanged when every weight is multiplied by the same factor). For a one-way unit
+    edge u -> v, :math:`H[u, v] = \tfrac12 e^{+i 2\pi q}` and
+    :math:`H[v, u] = \overline{H[u, v]}` under all three phases. Reciprocal edges of equal
+    weight carry no phase; q = 0 gives :math:`A_s`; reversing every edge conjugates H.
 
-    The "difference" phase suits weights in [0, 1]. With large weights (volumes, counts) the
-    phase wraps around the circle and distinct flows can look alike: use ``phase="sign"`` or
-    rescale the weights first.
+    The "difference" phase suits weights in [0, 1]. Once some net flow
+    :math:`|A_{uv} - A_{vu}|` exceeds :math:`1/(2q)` its phase passes :math:`\pi` and a
+    :class:`~phasorgraph.errors.PhaseWrapWarning` is issued (once per graph): use
+    ``phase="relative"`` for amounts, volumes and counts (see the README's advice on large
+    weights, measured on the freight network).
 
     Args:
         graph: a DirectedGraph with non-negative weights.
         charge: q in [0, 0.5] (default 0.25, where one-way edges are purely imaginary).
-        phase: "difference" (default) or "sign".
+        phase: "difference" (default), "sign" or "relative".
         dtype: complex64 (default) or complex128 (float32/float64 select that precision).
 
     Returns:
@@ -426,6 +476,7 @@ def magnetic_adjacency(graph: DirectedGraph, charge: float = 0.25, *, phase: str
     graph = _check_graph(graph, "magnetic_adjacency")
     q = _check_charge(charge)
     phase = _check_phase(phase)
+    _warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
     rows, cols, vals, degree = _magnetic_values(graph, q, phase)
     n = graph.num_nodes
@@ -447,7 +498,7 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
         graph: a DirectedGraph with non-negative weights.
         charge: q in [0, 0.5] (default 0.25).
         normalized: True (default) for the normalized form.
-        phase: "difference" (default) or "sign".
+        phase: "difference" (default), "sign" or "relative".
         dtype: complex64 (default) or complex128.
 
     Example:
@@ -459,6 +510,7 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
     graph = _check_graph(graph, "magnetic_laplacian")
     q = _check_charge(charge)
     phase = _check_phase(phase)
+    _warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
     normalized = check_flag("normalized", normalized)
     n = graph.num_nodes
@@ -469,7 +521,7 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
         magnitude *= s[cols.numpy()]
         magnitude *= sym.numpy()
         np.negative(magnitude, out=magnitude)
-        base = anti.numpy() if phase == "difference" else np.sign(anti.numpy())
+        base = _phase_base(anti, sym, phase).numpy()
         vals = _phasors(magnitude, base * (2 * math.pi * q), dtype)
         m = _assemble(n, rows, cols, vals, dtype, diag=torch.ones(n, dtype=torch.float64))
         spectrum = (0.0, 2.0)
@@ -493,7 +545,7 @@ def diffusion(graph: DirectedGraph, charge: Optional[float] = None, *, phase: st
     Args:
         graph: a DirectedGraph with non-negative weights.
         charge: None (default, real T) or q in [0, 0.5] (complex T(q)).
-        phase: "difference" or "sign" (magnetic only).
+        phase: "difference" (default), "sign" or "relative" (magnetic only).
         dtype: float32/float64 for real T (default float32); complex64/complex128 for T(q).
 
     References:
@@ -515,6 +567,7 @@ def diffusion(graph: DirectedGraph, charge: Optional[float] = None, *, phase: st
         return SparseOperator(m, hermitian=True, spectrum=(0.0, 1.0), kind="diffusion")
     q = _check_charge(charge)
     phase = _check_phase(phase)
+    _warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
     rows, cols, vals, degree = _magnetic_values(graph, q, phase)
     s = _inv_sqrt(degree)
@@ -736,7 +789,7 @@ def _magnetic_factors(graph: DirectedGraph, phase: str, dtype: torch.dtype, devi
     if cached is not None:
         return cached
     crow, cols, rows, magnitude, anti = _magnetic_pattern(graph)
-    base = _phase_angles(anti, 1.0, phase)
+    base = _phase_angles(anti, _parts(graph)[2], 1.0, phase)
     factors = tuple(t.to(device=device) for t in (crow, cols, rows)) + (
         magnitude.to(device=device, dtype=dtype), base.to(device=device, dtype=dtype))
     graph._cache[key] = factors
@@ -758,7 +811,7 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
         graph: a DirectedGraph with non-negative weights.
         charge: 0-dim real floating tensor q (may require grad). Not range-checked (the
             operator is periodic in q); layers keep it in [0, 0.5] themselves.
-        phase: "difference" (default) or "sign".
+        phase: "difference" (default), "sign" or "relative".
 
     The precision and device of the values follow ``charge``.
 
@@ -787,6 +840,8 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
     real = charge.dtype
     if real not in _REAL:
         raise GraphInputError(f"charge must be float32 or float64; got {real}")
+    if charge.device.type != "meta":  # a meta tensor holds no value to check
+        _warn_if_wrapped(graph, abs(float(charge.detach())), phase)
     crow, cols, rows, magnitude, base = _magnetic_factors(graph, phase, real, charge.device)
     angle = base * charge
     # the non-zeros of D^-1/2 H(q) D^-1/2 as two real arrays (what the kernels read)
@@ -807,7 +862,7 @@ def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor,
         graph: a DirectedGraph with non-negative weights.
         charge: 0-dim real tensor q (may require grad), not range-checked.
         x: (N, ...) real or complex features; the precision of ``charge`` must match.
-        phase: "difference" (default) or "sign".
+        phase: "difference" (default), "sign" or "relative".
 
     Returns:
         (N, ...) complex tensor.

@@ -197,7 +197,8 @@ class MagneticFilter(ChebyshevBase):
         bias: learn an additive bias (default True).
         complex_weights: fully complex W_k and bias (default False: real weights act on the real
             and imaginary parts alike; a real bias adds to the real part).
-        phase: "difference" (default, for weights in [0, 1]) or "sign"; see
+        phase: "difference" (default, for weights in [0, 1]), "sign" or "relative" (for
+            amounts, volumes, counts: free of the weights' units); see
             :func:`phasorgraph.operators.magnetic_adjacency` for when to use which.
         device, dtype: factory kwargs (float32 or float64; the charge logits share them).
 
