@@ -234,7 +234,7 @@ CASES = [
      r"did not converge to tol=1e-13 in max_iter=1 iterations; raise teleport, tol or max_iter"),
     ("charge as text shows the text", lambda: magnetic_laplacian(_g(), "0.1"), r"got str '0\.1'"),
     ("unknown phase with charge=None", lambda: diffusion(_g(), None, phase="angle"),
-     r"phase must be one of \('difference', 'sign'\); got 'angle'"),
+     r"phase must be one of \('difference', 'sign', 'relative'\); got 'angle'"),
     ("ragged block densities", lambda: directed_block_model([2, 2], [[0.1, 0.2], [0.1]], 0.5),
      r"density must be a probability or a \(2, 2\) matrix of probabilities, one entry per block pair; got "
      r"\[\[0\.1, 0\.2\], \[0\.1\]\] \(rows of different lengths\?\)"),
@@ -253,7 +253,7 @@ CASES = [
      r"normalized must be True or False; got 'False'"),
     ("lazy flag given as a number", lambda: random_walk(_g(), lazy=0), r"lazy must be True or False; got 0"),
     ("phase given as an array", lambda: magnetic_laplacian(_g(), 0.25, phase=np.array(["sign", "sign"])),
-     r"phase must be one of \('difference', 'sign'\); got array\("),
+     r"phase must be one of \('difference', 'sign', 'relative'\); got array\("),
     ("dtype given as a list", lambda: magnetic_adjacency(_g(), 0.25, dtype=[torch.complex64]),
      r"dtype must be torch\.complex64 or torch\.complex128 .*; got \[torch\.complex64\]"),
     ("dtype given as an array", lambda: normalized_laplacian(_g(), dtype=np.ones(2)),
