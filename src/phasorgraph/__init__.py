@@ -4,6 +4,7 @@ from .errors import GraphInputError
 from .graph import DirectedGraph
 from .sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
 from . import data, nn, operators, segments, spectral, tables
+from .scan import ChargeScan, scan_charges
 from .operators import (
     combinatorial_laplacian,
     diffusion,
@@ -46,5 +47,7 @@ __all__ = [
     "proximity_operators",
     "magnetic_matmul",
     "magnetic_product",
+    "scan_charges",
+    "ChargeScan",
     "__version__",
 ]
