@@ -5,6 +5,7 @@ from .graph import DirectedGraph
 from .sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
 from . import data, nn, operators, segments, spectral, tables
 from .scan import ChargeScan, scan_charges
+from .responses import filter_response, plot_filter_response
 from .operators import (
     combinatorial_laplacian,
     diffusion,
@@ -49,5 +50,7 @@ __all__ = [
     "magnetic_product",
     "scan_charges",
     "ChargeScan",
+    "filter_response",
+    "plot_filter_response",
     "__version__",
 ]
