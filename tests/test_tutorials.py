@@ -38,6 +38,8 @@ CASES = {
     "04_oversmoothing.py": ([], ["Normalized Dirichlet energy", "RenormalizedFilter + ReLU", "BandMix + ReLU",
                                  "scattering layers + ReLU"], "04_oversmoothing.png"),
     "05_drop_in.py": (["--no-plot"], ["The whole change", "after: + MagneticFilter", "before: MLP on features"], None),
+    "06_does_direction_help.py": ([], ["charge scan (classification", "scan verdict: ", "Magnetic, q = 0 (symmetric)",
+                                       "gain norm at eigenvalue"], "06_filter_response.png"),
 }
 
 

@@ -655,8 +655,10 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
     Notes:
         Cost: ``order`` sparse products per charge per graph, for the observed graph and each
         permuted copy, plus the model fits on (labelled rows) x (3 (K + 1) (F + 1) + 1) features,
-        batched over all folds and charges. The logistic models take bound-Hessian Newton steps
-        (Boehning, Ann. Inst. Stat. Math. 1992), the ridge models one solve per fold.
+        batched over all folds and charges. The logistic models take 15 bound-Hessian Newton
+        steps (Boehning, Ann. Inst. Stat. Math. 1992) from zero, short of the exact optimum (the
+        fold scores moved by at most 0.03 between 15 and 200 steps on the freight network of the
+        tutorials); the ridge models take one solve per fold.
 
     Example:
         >>> from phasorgraph.data import directed_block_model
@@ -708,7 +710,7 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
     test = _folds(rng, n_rows, folds, repeats, strata, groups)
     test_fraction = float(test.sum(1).mean()) / n_rows
     design = _pair_design if task == "link" else _node_design
-    iterations = 30
+    iterations = 15  # fold scores moved by <= 0.03 between 15 and 200 steps on the freight network (measured)
     bar = _Progress(progress, len(qs) + permutations * (len(qs) - 1), "charge scan")
 
     def scores_on(g, which):
