@@ -27,6 +27,7 @@ torch-plan:
 
 demo: $(STAMP)
 	$(PY) tutorials/01_direction_matters.py
+	$(PY) tutorials/06_does_direction_help.py
 
 test: $(STAMP)
 	$(PY) -m pytest -q

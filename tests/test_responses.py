@@ -9,7 +9,7 @@ import torch
 import phasorgraph as pg
 from phasorgraph import GraphInputError
 from phasorgraph.data import directed_block_model
-from phasorgraph.nn import ChebyshevFilter, MagneticFilter
+from phasorgraph.nn import ChebyshevFilter, LearnedCharge, MagneticFilter
 from phasorgraph.responses import filter_response, plot_filter_response
 
 
@@ -30,7 +30,7 @@ def test_chebyshev_response_reproduces_the_layer_through_eigh():
     torch.manual_seed(0)
     g = _graph()
     op = pg.normalized_laplacian(g, dtype=torch.float64)
-    layer = ChebyshevFilter(3, 2, order=4, lmax=2.0, dtype=torch.float64)
+    layer = ChebyshevFilter(3, 2, order=4, max_eigenvalue=2.0, dtype=torch.float64)
     x = torch.randn(g.num_nodes, 3, dtype=torch.float64)
     y = (layer(x, op) - layer.bias).detach().numpy()
     L = op.to_dense().numpy()
@@ -59,7 +59,7 @@ def test_magnetic_response_per_charge_group_reproduces_the_layer_through_eigh(co
 
 
 def test_response_grid_norm_and_charges():
-    layer = MagneticFilter(3, 6, order=2, charge=0.05, learn_charge=True)
+    layer = MagneticFilter(3, 6, order=2, charge=LearnedCharge(start=0.05))
     r = filter_response(layer, points=9)
     assert r.eigenvalues.tolist() == pytest.approx(np.linspace(0, 2, 9).tolist())
     assert r.gains.shape == (1, 9, 3, 6) and r.norm.shape == (1, 9)

@@ -47,23 +47,15 @@ ORDER = 2
 PHASE = "sign"
 
 
-def magnetic_charge(start: float, learned: bool) -> dict:
-    """Keyword arguments for a MagneticFilter charge: fixed, or learned from ``start``."""
-    if not learned:
-        return {"charge": start}
-    if hasattr(pg.nn, "LearnedCharge"):
-        return {"charge": pg.nn.LearnedCharge(start=start)}
-    return {"charge": start, "learn_charge": True}
-
-
 class Magnetic(nn.Module):
     """Two MagneticFilters, modReLU, then real and imaginary parts and a linear head."""
 
     def __init__(self, fin, classes, *, charge, learned):
         super().__init__()
-        self.conv1 = pg.nn.MagneticFilter(fin, HIDDEN, ORDER, phase=PHASE, **magnetic_charge(charge, learned))
+        q = pg.nn.LearnedCharge(start=charge) if learned else charge  # each layer learns its own
+        self.conv1 = pg.nn.MagneticFilter(fin, HIDDEN, ORDER, charge=q, phase=PHASE)
         self.act1 = pg.nn.ModReLU(HIDDEN)
-        self.conv2 = pg.nn.MagneticFilter(HIDDEN, HIDDEN, ORDER, phase=PHASE, **magnetic_charge(charge, learned))
+        self.conv2 = pg.nn.MagneticFilter(HIDDEN, HIDDEN, ORDER, charge=q, phase=PHASE)
         self.act2 = pg.nn.ModReLU(HIDDEN)
         self.head = nn.Sequential(pg.nn.ComplexToReal("cartesian"), nn.Linear(2 * HIDDEN, classes))
 

@@ -103,10 +103,7 @@ def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float]
         charges = torch.as_tensor(layer.charge.detach(), dtype=torch.float64).reshape(-1)
         groups = int(charges.numel())
     elif isinstance(layer, ChebyshevFilter):
-        stored = getattr(layer, "max_eigenvalue", None)
-        if stored is None:
-            stored = getattr(layer, "lmax", None)
-        lam = stored if max_eigenvalue is None else max_eigenvalue
+        lam = layer.max_eigenvalue if max_eigenvalue is None else max_eigenvalue
         if lam is None:
             raise GraphInputError(
                 "max_eigenvalue must be given for a ChebyshevFilter built without a fixed largest "
@@ -156,7 +153,7 @@ def plot_filter_response(layer, path, points: int = 256, *, max_eigenvalue: Opti
     Example:
         >>> import tempfile, os
         >>> from phasorgraph.nn import ChebyshevFilter
-        >>> out = plot_filter_response(ChebyshevFilter(2, 2, 3, lmax=2.0), os.path.join(tempfile.mkdtemp(), "r.png"))
+        >>> out = plot_filter_response(ChebyshevFilter(2, 2, 3, max_eigenvalue=2.0), os.path.join(tempfile.mkdtemp(), "r.png"))
         >>> out.endswith("r.png")
         True
     """
