@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import subprocess
 import sys
 
 import numpy as np
@@ -55,12 +54,18 @@ def test_command_prints_the_table_and_writes_png_and_json(tables, capsys):
     assert (tmp / "out" / "charge_scan.png").read_bytes()[:4] == b"\x89PNG"
 
 
-def test_command_runs_as_a_module(tables):
+def test_command_runs_as_a_module(tables, monkeypatch, capsys):
+    # `python -m phasorgraph.scan` runs phasorgraph/scan/__main__.py as __main__ (runpy, as the
+    # interpreter does; in-process to spare a second interpreter start)
+    import runpy
+
     edges, nodes, tmp = tables
-    run = subprocess.run([sys.executable, "-m", "phasorgraph.scan"] + _args(edges, nodes, tmp / "m"),
-                         capture_output=True, text=True, timeout=120)
-    assert run.returncode == 0, run.stderr
-    assert "direction" in run.stdout and (tmp / "m" / "charge_scan.json").exists()
+    monkeypatch.setattr(sys, "argv", ["phasorgraph.scan"] + _args(edges, nodes, tmp / "m"))
+    monkeypatch.delitem(sys.modules, "phasorgraph.scan.__main__", raising=False)  # imported above for main()
+    with pytest.raises(SystemExit) as done:
+        runpy.run_module("phasorgraph.scan", run_name="__main__", alter_sys=True)
+    assert done.value.code == 0
+    assert "direction" in capsys.readouterr().out and (tmp / "m" / "charge_scan.json").exists()
 
 
 @pytest.mark.parametrize("override, words", [

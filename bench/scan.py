@@ -1,0 +1,94 @@
+"""How long does the charge scan take on a large graph, against one training step of a MagneticFilter?
+
+Setup (seeded, outside the timed bodies): a directed block model of N nodes in 4 blocks with
+about E edges (a mild flow between blocks), F = 4 random features, labels known for 10 % of
+the nodes. Timed, in one process:
+
+* ``features``: the Chebyshev terms of one charge (operator build + ``order`` = 4 products);
+* ``scan, no permutations``: :func:`phasorgraph.scan_charges` with the default 7 charges,
+  5 folds x 2 repeats, ``permutations=0`` (the interval, no p-value);
+* ``scan, default``: the same with the default 19 permutations (the sequential test stops after
+  3 randomized copies match the observed gain);
+* baseline ``train step``: one forward + backward of ``MagneticFilter(F + 1, 16, order=4)`` at a
+  fixed charge on the same graph (operator already built), the unit a user pays for each
+  epoch of each model trained to compare charges by hand.
+
+Usage: .venv/bin/python bench/scan.py [--quick] [--threads T]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+
+import numpy as np
+import torch
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from _common import machine_info, print_table, write_results  # noqa: E402
+
+import phasorgraph as pg  # noqa: E402
+from phasorgraph.data import directed_block_model  # noqa: E402
+from phasorgraph.scan import charges as scan_impl  # noqa: E402
+
+
+def _once(fn):
+    t0 = time.perf_counter()
+    out = fn()
+    return time.perf_counter() - t0, out
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="N = 1e4, E = 1e5")
+    parser.add_argument("--threads", type=int, default=2)
+    args = parser.parse_args(argv)
+    torch.set_num_threads(args.threads)
+    n, e = (10_000, 100_000) if args.quick else (100_000, 1_000_000)
+    blocks = 4
+    density = e / (n * (n - 1) / 2)
+    flow = np.full((blocks, blocks), 0.5)
+    flow[np.triu_indices(blocks, 1)] = 0.6
+    flow[np.tril_indices(blocks, -1)] = 0.4
+    graph, labels = directed_block_model([n // blocks] * blocks, density, flow, seed=0)
+    rng = np.random.default_rng(0)
+    y = labels.clone()
+    y[torch.from_numpy(rng.random(n) >= 0.1)] = -1
+    x = torch.randn(n, 4)
+    load_before = os.getloadavg()[0]
+    print(f"graph: {graph.num_nodes} nodes, {graph.num_edges} edges; {int((y >= 0).sum())} labelled; "
+          f"{args.threads} thread(s); load average {load_before:.1f}")
+
+    layer = pg.nn.MagneticFilter(5, 16, order=4, charge=0.1)
+    xs = torch.cat([torch.ones(n, 1), x], dim=1)
+    layer(xs, graph)  # builds and keeps the operator
+
+    def step():
+        layer.zero_grad()
+        layer(xs, graph).abs().sum().backward()
+
+    step()
+    t_step = float(np.median([_once(step)[0] for _ in range(3)]))
+    t_feat = float(np.median([_once(lambda: scan_impl._terms(graph, xs, 0.1, 4, "difference", torch.complex64))[0]
+                              for _ in range(3)]))
+    t_scan0, r0 = _once(lambda: pg.scan_charges(graph, x, y, permutations=0, seed=0, progress=True))
+    t_scan, r = _once(lambda: pg.scan_charges(graph, x, y, seed=0, progress=True))
+    load_after = os.getloadavg()[0]
+    rows = [
+        {"case": "train step (baseline)", "seconds": t_step, "x baseline": 1.0},
+        {"case": "features, one charge", "seconds": t_feat, "x baseline": t_feat / t_step},
+        {"case": "scan, no permutations", "seconds": t_scan0, "x baseline": t_scan0 / t_step},
+        {"case": f"scan, default ({r.permutations} permutations run)", "seconds": t_scan, "x baseline": t_scan / t_step},
+    ]
+    print_table(rows, ["case", "seconds", "x baseline"])
+    print(f"verdict: {r.verdict}")
+    print(f"load average {load_before:.1f} before, {load_after:.1f} after")
+    write_results("scan", {"nodes": n, "edges": graph.num_edges, "labelled": int((y >= 0).sum()), "threads": args.threads,
+                           "load_average": [load_before, load_after], "rows": rows, "verdict": r.verdict,
+                           "machine": machine_info()}, argv=sys.argv)
+
+
+if __name__ == "__main__":
+    main()
