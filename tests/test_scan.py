@@ -213,6 +213,9 @@ def test_result_prints_plots_and_serializes(tmp_path):
                           progress=False)
     text = str(result)
     assert "charge q" in text and "accuracy" in text and result.verdict in text
+    subset = scan_charges(g, torch.ones(g.num_nodes, 1), y, charges=[0, 0.25], permutations=0, max_labelled=60,
+                          seed=0, progress=False)
+    assert subset.settings["labelled"] == 60 and "60 of 150 labelled nodes" in str(subset)
     assert json.loads(json.dumps(result.to_dict()))["best_charge"] == 0.25
     path = result.plot(tmp_path / "scan.png")
     assert open(path, "rb").read(8) == b"\x89PNG\r\n\x1a\n"
