@@ -266,3 +266,14 @@ def test_bad_input_names_the_argument(case, match):
         args = ([0, 1], x, y)
     with pytest.raises(GraphInputError, match=match):
         scan_charges(*args, **kwargs)
+
+
+def test_a_phase_wrap_warning_is_given_once_not_per_permutation():
+    # weights of 10 with phase="difference" wrap the phase at q = 0.25 (2 pi 0.25 10 > pi)
+    g, y = _flow_graph(seed=1, sizes=(20, 20, 20))
+    heavy = pg.DirectedGraph(g.source, g.target, torch.full((g.num_edges,), 10.0), g.num_nodes)
+    with pytest.warns(pg.errors.PhaseWrapWarning) as caught:
+        scan_charges(heavy, torch.ones(g.num_nodes, 1), y, charges=[0, 0.25], permutations=3, seed=0,
+                     progress=False)
+    assert len([w for w in caught if issubclass(w.category, pg.errors.PhaseWrapWarning)]) == 1
+

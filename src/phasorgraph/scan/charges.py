@@ -17,13 +17,14 @@ import math
 import numbers
 import sys
 import time
+import warnings
 from dataclasses import dataclass
 from typing import Any, Optional, Sequence
 
 import numpy as np
 import torch
 
-from ..errors import GraphInputError
+from ..errors import GraphInputError, PhaseWrapWarning
 from ..graph import DirectedGraph
 from ..operators import magnetic_laplacian
 
@@ -751,7 +752,9 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
     exceed = 0
     for _ in range(permutations):
         permuted = randomize_orientation(graph, rng)
-        g_null = float(np.max(scores_on(permuted, qs[1:]).mean(1)) - base)
+        with warnings.catch_warnings():  # a phase-wrap warning was already given for the graph itself
+            warnings.simplefilter("ignore", PhaseWrapWarning)
+            g_null = float(np.max(scores_on(permuted, qs[1:]).mean(1)) - base)
         null.append(g_null)
         exceed += g_null >= gain - 1e-12
         if exceed >= 3:
