@@ -16,6 +16,9 @@ the nodes. Timed, in one process:
   fixed charge on the same graph (operator already built), the unit a user pays for each
   epoch of each model trained to compare charges by hand.
 
+Wall seconds are medians (train step, features: 3 runs) or single runs (the scans); CPU seconds
+(this process, ``time.process_time``) show what the work costs when the machine is shared.
+
 Usage: .venv/bin/python bench/scan.py [--quick] [--threads T]
 """
 
@@ -37,10 +40,17 @@ from phasorgraph.data import directed_block_model  # noqa: E402
 from phasorgraph.scan import charges as scan_impl  # noqa: E402
 
 
-def _once(fn):
-    t0 = time.perf_counter()
+CPU = {}
+
+
+def _once(fn, key=None):
+    """Wall seconds of one call (and its CPU seconds, this process, kept under ``key``)."""
+    c0, t0 = time.process_time(), time.perf_counter()
     out = fn()
-    return time.perf_counter() - t0, out
+    wall = time.perf_counter() - t0
+    if key is not None:
+        CPU[key] = time.process_time() - c0
+    return wall, out
 
 
 def main(argv=None) -> None:
@@ -73,23 +83,26 @@ def main(argv=None) -> None:
         layer(xs, graph).abs().sum().backward()
 
     step()
-    t_step = float(np.median([_once(step)[0] for _ in range(3)]))
-    t_feat = float(np.median([_once(lambda: scan_impl._terms(graph, xs, 0.1, 4, "difference", torch.complex64))[0]
-                              for _ in range(3)]))
-    t_scan0, r0 = _once(lambda: pg.scan_charges(graph, x, y, permutations=0, seed=0, progress=True))
-    t_scan2, r = _once(lambda: pg.scan_charges(graph, x, y, permutations=2, seed=0, progress=True))
+    t_step = float(np.median([_once(step, "step")[0] for _ in range(3)]))
+    t_feat = float(np.median([_once(lambda: scan_impl._terms(graph, xs, 0.1, 4, "difference", torch.complex64),
+                                    "features")[0] for _ in range(3)]))
+    t_scan0, r0 = _once(lambda: pg.scan_charges(graph, x, y, permutations=0, seed=0, progress=True), "scan0")
+    t_scan2, r = _once(lambda: pg.scan_charges(graph, x, y, permutations=2, seed=0, progress=True), "scan2")
     per_permutation = max(t_scan2 - t_scan0, 0.0) / 2
     estimate = t_scan0 + 19 * per_permutation
     load_after = os.getloadavg()[0]
     rows = [
-        {"case": "train step (baseline)", "seconds": t_step, "x baseline": 1.0},
-        {"case": "features, one charge", "seconds": t_feat, "x baseline": t_feat / t_step},
-        {"case": "scan, no permutations", "seconds": t_scan0, "x baseline": t_scan0 / t_step},
-        {"case": "scan, 2 permutations", "seconds": t_scan2, "x baseline": t_scan2 / t_step},
+        {"case": "train step (baseline)", "seconds": t_step, "x baseline": 1.0, "cpu seconds (last run)": CPU["step"]},
+        {"case": "features, one charge", "seconds": t_feat, "x baseline": t_feat / t_step,
+         "cpu seconds (last run)": CPU["features"]},
+        {"case": "scan, no permutations", "seconds": t_scan0, "x baseline": t_scan0 / t_step,
+         "cpu seconds (last run)": CPU["scan0"]},
+        {"case": "scan, 2 permutations", "seconds": t_scan2, "x baseline": t_scan2 / t_step,
+         "cpu seconds (last run)": CPU["scan2"]},
         {"case": "one permutation (difference / 2)", "seconds": per_permutation, "x baseline": per_permutation / t_step},
         {"case": "19 permutations (estimate, not run)", "seconds": estimate, "x baseline": estimate / t_step},
     ]
-    print_table(rows, ["case", "seconds", "x baseline"])
+    print_table(rows, ["case", "seconds", "x baseline", "cpu seconds (last run)"])
     print(f"interval and gain: {r0.verdict}")
     print(f"load average {load_before:.1f} before, {load_after:.1f} after")
     write_results("scan", {"nodes": n, "edges": graph.num_edges, "labelled": int((y >= 0).sum()), "threads": args.threads,
