@@ -1,9 +1,9 @@
-"""Benchmark: generated graphs and link splits at scale (directed_block_model, split_links).
+"""Benchmark: generated graphs and link splits at scale (directed_block_model, split_link_presence).
 
 Grid: graph size (N nodes, about E edges), 4 equal blocks, uniform density chosen so that the
 expected edge count is E, flow 0.8 between blocks. For each size it times the whole
 ``directed_block_model`` call, the edge sampling alone (without building the DirectedGraph,
-whose canonical sort is graph.py's cost) and ``split_links`` (existence, 10 % / 10 %).
+whose canonical sort is graph.py's cost) and ``split_link_presence`` (10 % / 10 %).
 Baselines a user might write instead, at small N only: networkx's
 ``stochastic_block_model(directed=True, sparse=True)`` and a dense numpy Bernoulli matrix
 (rng.random((N, N)) < p); both are reported as ratios to our call at the same N and density.
@@ -24,7 +24,7 @@ import torch
 
 from _common import print_table, time_stats, write_results
 
-from phasorgraph.data import directed_block_model, split_links
+from phasorgraph.data import directed_block_model, split_link_presence
 from phasorgraph.data.generators import _block_edges, _num_pairs
 
 FLOW = np.array([[0.5, 0.8, 0.8, 0.8], [0.2, 0.5, 0.8, 0.8], [0.2, 0.2, 0.5, 0.8], [0.2, 0.2, 0.2, 0.5]])
@@ -44,7 +44,7 @@ def scale_rows(grid, repeats):
         sample = time_stats(lambda: _block_edges(np.random.default_rng(0), np.array(sizes), prob, FLOW),
                             repeats=repeats, warmup=0)
         g, _ = directed_block_model(sizes, p, FLOW, seed=0)
-        split = time_stats(lambda: split_links(g, "existence", 0.1, 0.1, seed=0), repeats=max(1, repeats - 1), warmup=0)
+        split = time_stats(lambda: split_link_presence(g, 0.1, 0.1, seed=0), repeats=max(1, repeats - 1), warmup=0)
         rows.append({
             "nodes": n, "edges": g.num_edges,
             "block_model_s": full["median"], "sampling_only_s": sample["median"],
@@ -94,7 +94,7 @@ def main(argv=None):
     else:
         grid, base, repeats = [(100_000, 1_000_000), (1_000_000, 10_000_000)], [(1_000, 5_000), (3_000, 45_000)], 3
     scale = scale_rows(grid, repeats)
-    print_table(scale, title="directed_block_model and split_links at scale (median seconds)")
+    print_table(scale, title="directed_block_model and split_link_presence at scale (median seconds)")
     baselines = baseline_rows(base, 5)
     print_table(baselines, title="Baselines at small N (ratios > 1: ours is faster)")
     dense = dense_block_rows(repeats)

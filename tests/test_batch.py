@@ -1,5 +1,5 @@
 """GraphBatch: block-diagonal structure and operators against scipy.sparse.block_diag, readouts
-against a per-graph loop, unbatch round trip, empty graphs, mini-batch iteration, bad input."""
+against a per-graph loop, split_by_graph round trip, empty graphs, mini-batch iteration, bad input."""
 
 import numpy as np
 import pytest
@@ -74,7 +74,7 @@ def test_magnetic_product_with_a_learned_charge_splits_over_the_parts():
     q = torch.tensor(0.17, dtype=torch.float64)
     x = torch.randn(b.graph.num_nodes, 3, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
     whole = magnetic_matmul(b.graph, q, x)
-    pieces = [magnetic_matmul(g, q, xi) for g, xi in zip(graphs, b.unbatch(x))]  # 0-node parts included
+    pieces = [magnetic_matmul(g, q, xi) for g, xi in zip(graphs, b.split_by_graph(x))]  # 0-node parts included
     torch.testing.assert_close(whole, torch.cat(pieces), rtol=0, atol=1e-13)
 
 
@@ -85,7 +85,7 @@ def test_readout_matches_a_per_graph_loop(reduce):
     x = torch.randn(b.graph.num_nodes, 2, 3, dtype=torch.float64, generator=torch.Generator().manual_seed(1))
     got = b.readout(x, reduce=reduce)
     fn = {"mean": lambda t: t.mean(0), "sum": lambda t: t.sum(0), "max": lambda t: t.max(0).values}[reduce]
-    expected = torch.stack([fn(xi) if xi.shape[0] else torch.zeros(2, 3, dtype=torch.float64) for xi in b.unbatch(x)])
+    expected = torch.stack([fn(xi) if xi.shape[0] else torch.zeros(2, 3, dtype=torch.float64) for xi in b.split_by_graph(x)])
     torch.testing.assert_close(got, expected, rtol=0, atol=1e-14)
     assert got.shape == (len(graphs), 2, 3) and bool(torch.isfinite(got).all())
 
@@ -111,11 +111,11 @@ def test_readout_gradient_passes_gradcheck():
         assert torch.autograd.gradcheck(lambda t: b.readout(t, reduce), (x,))
 
 
-def test_unbatch_round_trip():
+def test_split_by_graph_round_trip():
     graphs = parts()
     b = GraphBatch.from_graphs(graphs)
     x = torch.arange(b.graph.num_nodes * 2, dtype=torch.float32).view(-1, 2)
-    pieces = b.unbatch(x)
+    pieces = b.split_by_graph(x)
     assert [p.shape[0] for p in pieces] == [g.num_nodes for g in graphs]
     assert torch.equal(torch.cat(pieces), x)
     again = GraphBatch.from_graphs(graphs)
@@ -125,7 +125,7 @@ def test_unbatch_round_trip():
 def test_empty_batch():
     b = GraphBatch.from_graphs([])
     assert b.num_graphs == 0 and b.graph.num_nodes == 0 and b.node_offsets.tolist() == [0]
-    assert b.readout(torch.zeros(0, 3)).shape == (0, 3) and b.unbatch(torch.zeros(0, 3)) == []
+    assert b.readout(torch.zeros(0, 3)).shape == (0, 3) and b.split_by_graph(torch.zeros(0, 3)) == []
 
 
 def test_iterate_batches_covers_each_graph_once_with_its_target():
@@ -153,7 +153,7 @@ def test_iterate_batches_covers_each_graph_once_with_its_target():
          r"reduce must be one of \('mean', 'sum', 'max'\); got 'median'"),
         (lambda: GraphBatch.from_graphs([directed_cycle(3)]).readout(torch.ones(4, 1)),
          r"x must be a tensor with one row per node of the batch \(3\), shape \(N, ...\); got \(4, 1\)"),
-        (lambda: GraphBatch.from_graphs([directed_cycle(3)]).unbatch(np.ones((3, 1))),
+        (lambda: GraphBatch.from_graphs([directed_cycle(3)]).split_by_graph(np.ones((3, 1))),
          r"x must be a tensor with one row per node of the batch \(3\).*got ndarray"),
         (lambda: GraphBatch.from_graphs([directed_cycle(3)]).readout(torch.ones(3, 1, dtype=torch.complex64), "max"),
          r"x must be real for a max readout"),

@@ -122,7 +122,7 @@ def test_refuses_bad_features_and_index():
         layer(torch.zeros(3))
     with pytest.raises(GraphInputError, match=r"x must have one row per entry of graph_index \(4\)"):
         layer(torch.zeros(3, 2), torch.tensor([0, 0, 1, 1]))
-    with pytest.raises(GraphInputError, match=r"graph_index holds segment 2 but num_graphs is 2"):
+    with pytest.raises(GraphInputError, match=r"graph_index holds graph 2 but num_graphs is 2"):
         layer(torch.zeros(3, 2), torch.tensor([0, 1, 2]), num_graphs=2)
     with pytest.raises(GraphInputError, match=r"num_graphs must be None or 1 when graph_index is None"):
         layer(torch.zeros(3, 2), num_graphs=3)

@@ -7,7 +7,7 @@ import pytest
 import torch
 
 from phasorgraph import DirectedGraph, GraphInputError, magnetic_laplacian, normalized_laplacian
-from phasorgraph.data import directed_block_model, split_links, split_nodes
+from phasorgraph.data import directed_block_model, split_link_orientation, split_link_presence, split_nodes
 
 
 # ---------------------------------------------------------------------- nodes
@@ -36,6 +36,27 @@ def test_node_split_edge_cases():
     assert s.train.numel() == 0 and s.test.tolist() == [0, 1, 2]
     s = split_nodes([], 0.5, 0.5, seed=0)
     assert s.train.numel() == s.val.numel() == s.test.numel() == 0
+
+
+def test_unlabeled_nodes_are_in_no_split():
+    # -1 marks an unlabeled node (as node_labels gives it); a mask leaves nodes out too
+    labels = torch.tensor([0] * 10 + [1] * 10 + [-1] * 5)
+    s = split_nodes(labels, train=0.6, val=0.2, seed=0)
+    every = torch.cat([s.train, s.val, s.test])
+    assert torch.equal(torch.sort(every).values, torch.arange(20))  # exactly the labeled nodes
+    for c in (0, 1):  # stratified as before: 6 / 2 / 2 of each class of 10
+        assert [int((labels[p] == c).sum()) for p in (s.train, s.val, s.test)] == [6, 2, 2]
+    mask = torch.ones(25, dtype=torch.bool)
+    mask[:4] = False
+    m = split_nodes(labels, train=0.6, val=0.2, seed=0, labeled=mask)
+    kept = torch.sort(torch.cat([m.train, m.val, m.test])).values
+    assert torch.equal(kept, torch.arange(4, 20))
+    none = split_nodes([-1, -1, -1], seed=0)
+    assert none.train.numel() == none.val.numel() == none.test.numel() == 0
+    with pytest.raises(GraphInputError, match=r"labels must be classes >= 0, or -1 for an unlabeled node; got -2 at position 1"):
+        split_nodes([0, -2, 1], seed=0)
+    with pytest.raises(GraphInputError, match=r"labeled must be None or a boolean mask with one entry per label, shape \(3,\); got shape \(2,\)"):
+        split_nodes([0, 1, 1], seed=0, labeled=[True, False])
 
 
 @pytest.mark.parametrize(
@@ -78,8 +99,8 @@ def links_of(graph):
     return {frozenset((u, v)) for u, v in zip(graph.source.tolist(), graph.target.tolist()) if u != v}
 
 
-def test_existence_split_is_leak_free(full_graph):
-    s = split_links(full_graph, "existence", 0.1, 0.2, seed=1)
+def test_presence_split_is_leak_free(full_graph):
+    s = split_link_presence(full_graph, 0.1, 0.2, seed=1)
     ref = full_graph.to_networkx()  # networkx reference for edge membership
     train_ref = s.train_graph.to_networkx()
     links = links_of(full_graph)
@@ -102,8 +123,8 @@ def test_existence_split_is_leak_free(full_graph):
         assert lap[u, v] == 0 and lap[v, u] == 0 and nl[u, v] == 0
 
 
-def test_existence_negatives_are_true_non_edges(full_graph):
-    s = split_links(full_graph, "existence", 0.1, 0.1, seed=2)
+def test_presence_negatives_are_true_non_edges(full_graph):
+    s = split_link_presence(full_graph, 0.1, 0.1, seed=2)
     ref = full_graph.to_networkx()
     negatives = []
     for part in (s.train, s.val, s.test):
@@ -116,7 +137,7 @@ def test_existence_negatives_are_true_non_edges(full_graph):
 
 
 def test_direction_split_labels_and_excludes_reciprocal_links(full_graph):
-    s = split_links(full_graph, "direction", 0.1, 0.1, seed=3)
+    s = split_link_orientation(full_graph, 0.1, 0.1, seed=3)
     ref = full_graph.to_networkx()
     train_ref = s.train_graph.to_networkx()
     reciprocal = {frozenset((u, v)) for u, v in ref.edges() if u != v and ref.has_edge(v, u)}
@@ -138,9 +159,9 @@ def test_direction_split_labels_and_excludes_reciprocal_links(full_graph):
 
 
 def test_link_split_is_seeded(full_graph):
-    a = split_links(full_graph, "existence", 0.1, 0.1, seed=5)
-    b = split_links(full_graph, "existence", 0.1, 0.1, seed=5)
-    c = split_links(full_graph, "existence", 0.1, 0.1, seed=6)
+    a = split_link_presence(full_graph, 0.1, 0.1, seed=5)
+    b = split_link_presence(full_graph, 0.1, 0.1, seed=5)
+    c = split_link_presence(full_graph, 0.1, 0.1, seed=6)
     assert a.train_graph == b.train_graph and torch.equal(a.test.pairs, b.test.pairs)
     assert torch.equal(a.train.pairs, b.train.pairs) and not torch.equal(a.test.pairs, c.test.pairs)
 
@@ -149,55 +170,55 @@ def test_link_split_of_an_edgeless_graph_is_refused():
     # refused, not an empty split (issue 12: an empty split must never come back without a word)
     g = DirectedGraph.from_edges(torch.empty(2, 0, dtype=torch.int64), num_nodes=4)
     with pytest.raises(GraphInputError, match=r"graph has no link between distinct nodes"):
-        split_links(g, "existence", 0.2, 0.2, seed=0)
+        split_link_presence(g, 0.2, 0.2, seed=0)
 
 
 def test_link_split_with_zero_fractions_keeps_every_link_for_training():
     # asking for no val / test links is allowed and gives empty val / test splits
     g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 3]])
-    s = split_links(g, "direction", 0.0, 0.0, seed=0)
+    s = split_link_orientation(g, 0.0, 0.0, seed=0)
     assert len(s.val) == len(s.test) == 0 and len(s.train) == 2 * 3
 
 
-def test_direction_split_of_a_graph_with_only_reciprocal_links_is_refused():
+def test_orientation_split_of_a_graph_with_only_reciprocal_links_is_refused():
     g = DirectedGraph.from_edges([[0, 1, 1, 2], [1, 0, 2, 1]])
-    with pytest.raises(GraphInputError, match=r"graph has no one-way link, so the direction question has "
+    with pytest.raises(GraphInputError, match=r"graph has no one-way link, so split_link_orientation has "
                                               r"nothing to split: 2 reciprocal links"):
-        split_links(g, "direction", 0.1, 0.1, seed=0)
+        split_link_orientation(g, 0.1, 0.1, seed=0)
 
 
-@pytest.mark.parametrize("task", ["existence", "direction"])
-def test_link_split_fraction_that_rounds_to_no_link_is_refused(task):
+@pytest.mark.parametrize("split", [split_link_presence, split_link_orientation])
+def test_link_split_fraction_that_rounds_to_no_link_is_refused(split):
     g = DirectedGraph.from_edges([[0, 1, 2, 4], [1, 2, 3, 5]], num_nodes=8)  # 4 one-way links
     with pytest.raises(GraphInputError, match=r"val_fraction = 0\.1 of the 4 eligible links rounds to 0 links; "
                                               r"raise val_fraction to at least 0\.125"):
-        split_links(g, task, 0.1, 0.3, seed=0)
+        split(g, 0.1, 0.3, seed=0)
     with pytest.raises(GraphInputError, match=r"test_fraction = 0\.05 of the 4 eligible links rounds to 0"):
-        split_links(g, task, 0.3, 0.05, seed=0)
+        split(g, 0.3, 0.05, seed=0)
     with pytest.raises(GraphInputError, match=r"take all 4 eligible links after rounding"):
-        split_links(g, task, 0.45, 0.45, seed=0)
+        split(g, 0.45, 0.45, seed=0)
 
 
 @pytest.mark.parametrize(
     "kwargs,message",
     [
-        (dict(task="weight"), r"task must be one of \('existence', 'direction'\); got 'weight'"),
         (dict(val_fraction=0.5, test_fraction=0.5), r"val_fraction \+ test_fraction must be below 1"),
         (dict(val_fraction=1.0), r"val_fraction must be a fraction in \[0, 1\); got 1.0"),
         (dict(graph=[[0, 1]]), r"graph must be a DirectedGraph; got list"),
     ],
 )
 def test_link_split_rejects_bad_input(full_graph, kwargs, message):
-    args = dict(graph=full_graph, task="existence", val_fraction=0.1, test_fraction=0.1, seed=0)
+    args = dict(graph=full_graph, val_fraction=0.1, test_fraction=0.1, seed=0)
     args.update(kwargs)
-    with pytest.raises(GraphInputError, match=message):
-        split_links(**args)
+    for split in (split_link_presence, split_link_orientation):
+        with pytest.raises(GraphInputError, match=message):
+            split(**args)
 
 
-def test_existence_split_refuses_a_graph_too_dense_for_negatives():
+def test_presence_split_refuses_a_graph_too_dense_for_negatives():
     complete = DirectedGraph.from_networkx(nx.complete_graph(5))
-    with pytest.raises(GraphInputError, match=r"graph has only 0 non-adjacent node pairs but the existence task needs 10"):
-        split_links(complete, "existence", 0.2, 0.2, seed=0)
+    with pytest.raises(GraphInputError, match=r"graph has only 0 non-adjacent node pairs but split_link_presence needs 10"):
+        split_link_presence(complete, 0.2, 0.2, seed=0)
 
 
 # ---------------------------------------------------------------------- properties
@@ -207,20 +228,21 @@ from hypothesis import strategies as st  # noqa: E402
 from strategies import directed_graphs  # noqa: E402
 
 
-@given(directed_graphs(max_nodes=12, max_edges=10), st.sampled_from(["existence", "direction"]), st.integers(0, 3))
+@given(directed_graphs(max_nodes=12, max_edges=10), st.sampled_from(["presence", "orientation"]), st.integers(0, 3))
 def test_property_no_held_out_pair_reaches_the_training_graph(graph, task, seed):
     # generated graphs with isolated nodes, self-loops, duplicates and reciprocal edges
     try:
-        s = split_links(graph, task, 0.3, 0.3, seed=seed)
+        split = split_link_presence if task == "presence" else split_link_orientation
+        s = split(graph, 0.3, 0.3, seed=seed)
     except GraphInputError as err:
         # the allowed refusals: too dense for balanced negatives, or a split that would be empty
         message = str(err)
         links = {(min(u, v), max(u, v)) for u, v in zip(graph.source.tolist(), graph.target.tolist()) if u != v}
         one_way = {(u, v) for u, v in links if not ((u, v) in set(zip(graph.source.tolist(), graph.target.tolist()))
                                                     and (v, u) in set(zip(graph.source.tolist(), graph.target.tolist())))}
-        eligible = len(links) if task == "existence" else len(one_way)
+        eligible = len(links) if task == "presence" else len(one_way)
         if "non-adjacent node pairs" in message:
-            assert task == "existence"
+            assert task == "presence"
         elif "rounds to 0 links" in message:
             assert round(0.3 * eligible) == 0 < eligible
         elif "nothing to split" in message or "no link between distinct nodes" in message:
@@ -234,7 +256,7 @@ def test_property_no_held_out_pair_reaches_the_training_graph(graph, task, seed)
     for part in (s.val, s.test):
         for (u, v), label in zip(part.pairs.t().tolist(), part.labels.tolist()):
             assert (u, v) not in train and (v, u) not in train
-            if label == 0 and task == "existence":
+            if label == 0 and task == "presence":
                 assert (u, v) not in full and (v, u) not in full and u != v
     kept_loops = {(u, v) for u, v in full if u == v}
     assert kept_loops <= train

@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 from scipy.stats import rankdata
 
 from phasorgraph import DirectedGraph, GraphInputError
-from phasorgraph.data import GraphBatch, directed_cycle, split_links
+from phasorgraph.data import GraphBatch, directed_cycle, split_link_presence
 from phasorgraph.tables import graph_from_table, node_features, node_labels
 
 
@@ -123,7 +123,7 @@ def test_names_survive_every_helper_batching_and_splits():
     sym = _named_edges(g.symmetrized())
     for (u, v), w in named.items():
         assert sym[(u, v)] == pytest.approx((w + named.get((v, u), 0.0)) / 2)
-    split = split_links(g, "existence", 0.25, 0.25, seed=0)
+    split = split_link_presence(g, 0.25, 0.25, seed=0)
     assert split.train_graph.node_names.tolist() == g.node_names.tolist()
     b = GraphBatch.from_graphs([g, directed_cycle(2), g])
     assert b.graph.node_names.tolist()[:4] == [(0, n) for n in g.node_names.tolist()]

@@ -1,14 +1,15 @@
 """Lanes of a generated freight network: which way does an unseen lane run, and does it exist?
 
 Task. Hold out 10 % (validation) and 20 % (test) of the lanes of the generated freight network
-(tutorials/freight.py) with ``phasorgraph.data.split_links``; the held-out lanes are removed
-from ``train_graph`` in both directions, so no operator the model sees contains them.
+(tutorials/freight.py) with ``phasorgraph.data.split_link_orientation`` and
+``split_link_presence``; the held-out lanes are removed from ``train_graph`` in both
+directions, so no operator the model sees contains them.
 
-* direction: for a held-out one-way lane {u, v}, is it u -> v or v -> u? (Pairs (u, v) of
-  the true direction have label 1, their reverses label 0; lanes with traffic both ways are
-  not part of this task.)
-* existence: is there a lane between u and v at all (either way)? Negatives are depot pairs
-  with no lane, as many as the positives.
+* which way (``split_link_orientation``): for a held-out one-way lane {u, v}, is it u -> v or
+  v -> u? (Pairs (u, v) of the true direction have label 1, their reverses label 0; lanes
+  with traffic both ways are not part of this question.)
+* is there a lane (``split_link_presence``): is there a lane between u and v at all (either
+  way)? Negatives are depot pairs with no lane, as many as the positives.
 
 Model. Node embeddings z (complex, N x 24) from two MagneticFilter layers (order 2, modReLU)
 on ``train_graph`` with the features of tutorial 01, and a pair scorer: an MLP on
@@ -126,13 +127,14 @@ def main(argv=None) -> None:
     variants = {"charge 0 (no direction)": dict(charge=0.0),
                 "charge learned from 0.05": dict(charge=pg.nn.LearnedCharge(start=0.05))}
     rows = []
-    for task in ("direction", "existence"):
+    questions = {"which way": data.split_link_orientation, "is there a lane": data.split_link_presence}
+    for question, split_lanes in questions.items():
         for name, kw in variants.items():
-            print(f"\n-- {task}: {name}")
+            print(f"\n-- {question}: {name}")
             res = []
             for run in range(runs):
                 seed = args.seed + run
-                split = data.split_links(net.graph, task, val_fraction=0.1, test_fraction=0.2, seed=seed)
+                split = split_lanes(net.graph, val_fraction=0.1, test_fraction=0.2, seed=seed)
                 if run == 0:
                     print(f"    split: {len(split.train)} train / {len(split.val)} val / {len(split.test)} test "
                           f"pairs; train_graph has {split.train_graph.num_edges} of {net.graph.num_edges} lanes")
@@ -145,12 +147,12 @@ def main(argv=None) -> None:
                 res.append(r)
             q = "0 fixed" if not isinstance(kw["charge"], pg.nn.LearnedCharge) else " / ".join(
                 f"{sum(r['charges'][i] for r in res) / len(res):.3f}" for i in range(2))
-            rows.append((task, name, C.mean_std([r["test_auc"] for r in res]),
+            rows.append((question, name, C.mean_std([r["test_auc"] for r in res]),
                          C.mean_std([r["test_acc"] for r in res]), q, C.count_parameters(model),
                          f"{sum(r['seconds'] for r in res) / len(res):.1f}"))
     C.print_table(f"Held-out lanes, test metrics over {runs} run(s) ({net.num_depots} depots, {epochs} epochs; "
                   f"chance: AUC 0.5, accuracy 0.5)",
-                  ["task", "model", "test AUC", "test accuracy", "q (layer 1 / 2)", "parameters", "train s/run"], rows,
+                  ["question", "model", "test AUC", "test accuracy", "q (layer 1 / 2)", "parameters", "train s/run"], rows,
                   left=2)
     print(f"\nmachine: {C.machine_line()}")
     print(f"total time {time.perf_counter() - t_start:.1f} s")

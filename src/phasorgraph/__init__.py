@@ -3,7 +3,7 @@
 from .errors import GraphInputError
 from .graph import DirectedGraph
 from .sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
-from . import data, nn, operators, segments, spectral, tables
+from . import data, nn, operators, spectral, tables
 from .scan import ChargeScan, scan_charges
 from .responses import filter_response, plot_filter_response
 from .operators import (
@@ -34,7 +34,6 @@ __all__ = [
     "spectral",
     "nn",
     "data",
-    "segments",
     "tables",
     "combinatorial_laplacian",
     "normalized_laplacian",

@@ -17,12 +17,12 @@ import torch
 from .._checks import check_flag
 from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
-from ..segments import segment_max, segment_mean, segment_sum
+from .._groups import group_max, group_mean, group_sum
 from .generators import _rng
 
 __all__ = ["GraphBatch", "iterate_batches"]
 
-_REDUCE = {"mean": segment_mean, "sum": segment_sum, "max": segment_max}
+_REDUCE = {"mean": group_mean, "sum": group_sum, "max": group_max}
 
 
 def _batch_names(graphs: Sequence[DirectedGraph]):
@@ -119,7 +119,7 @@ class GraphBatch:
     def readout(self, x: torch.Tensor, reduce: str = "mean") -> torch.Tensor:
         r"""Per-graph reduction of node rows: :math:`r_i = \mathrm{reduce}_{u \in G_i} x_u`.
 
-        Vectorized segment reductions (:mod:`phasorgraph.segments`), no loop over graphs. A
+        Vectorized per-graph reductions (``index_add`` / ``scatter_reduce``), no loop over graphs. A
         graph with 0 nodes reads out as 0 for every reduction (never NaN or -inf).
 
         Args:
@@ -134,8 +134,15 @@ class GraphBatch:
             raise GraphInputError(f"reduce must be one of {tuple(_REDUCE)}; got {_value_text(reduce)}")
         return _REDUCE[reduce](x, self.graph_index, self.num_graphs)
 
-    def unbatch(self, x: torch.Tensor) -> list[torch.Tensor]:
-        """Split node rows back into one tensor per graph (views, in batch order): G tensors (n_i, ...)."""
+    def split_by_graph(self, x: torch.Tensor) -> list[torch.Tensor]:
+        """Split node rows back into one tensor per graph (views, in batch order): G tensors (n_i, ...).
+
+        Example:
+            >>> from phasorgraph.data import directed_cycle
+            >>> b = GraphBatch.from_graphs([directed_cycle(2), directed_cycle(3)])
+            >>> [tuple(p.shape) for p in b.split_by_graph(torch.zeros(5, 4))]
+            [(2, 4), (3, 4)]
+        """
         x = self._check_rows(x)
         return list(torch.split(x, self.num_nodes_per_graph.tolist(), dim=0))
 

@@ -1,7 +1,8 @@
-r"""Vectorized reductions of node rows over segments (graphs of a batch), no Python loop.
+r"""Private: vectorized reductions of node rows over groups (the graphs of a batch), no Python loop.
 
-``index`` (N,) int64 assigns each row of ``x`` (N, ...) to a segment in ``0 .. num_segments-1``.
-Empty segments give 0 (never NaN or -inf).
+``index`` (N,) int64 assigns each row of ``x`` (N, ...) to a group in ``0 .. num_groups-1``.
+Empty groups give 0 (never NaN or -inf). Used by :class:`phasorgraph.data.GraphBatch` and the
+graph-level readouts; users call ``GraphBatch.readout``.
 """
 
 from __future__ import annotations
@@ -12,32 +13,32 @@ from ._checks import check_int
 from ._limits import check_node_count
 from .errors import GraphInputError
 
-__all__ = ["segment_sum", "segment_mean", "segment_max", "segment_count", "check_segments"]
+__all__ = ["group_sum", "group_mean", "group_max", "group_count", "check_groups"]
 
 
-def _check_index(index: torch.Tensor, num_segments) -> int:
-    """Validate graph_index (and num_graphs); return the number of segments."""
+def _check_index(index: torch.Tensor, num_groups) -> int:
+    """Validate graph_index (and num_graphs); return the number of groups."""
     if not isinstance(index, torch.Tensor) or index.dim() != 1 or index.dtype not in (torch.int64, torch.int32):
         what = f"shape {tuple(index.shape)}, dtype {index.dtype}" if isinstance(index, torch.Tensor) else type(index).__name__
         raise GraphInputError(f"graph_index must be a 1-D int64 or int32 tensor; got {what}")
     if index.device.type == "meta":
         raise GraphInputError("graph_index is on the meta device, which holds shapes but no values")
-    if num_segments is not None:
-        num_segments = check_node_count(check_int("num_graphs", num_segments), what="a per-graph readout",
+    if num_groups is not None:
+        num_groups = check_node_count(check_int("num_graphs", num_groups), what="a per-graph readout",
                                         bytes_per_node=8, name="num_graphs")
     if index.numel() and int(index.min()) < 0:
         raise GraphInputError("graph_index must be non-negative")
     largest = int(index.max()) + 1 if index.numel() else 0
-    if num_segments is None:
+    if num_groups is None:
         return largest
-    if largest > num_segments:
-        raise GraphInputError(f"graph_index holds segment {largest - 1} but num_graphs is {num_segments}")
-    return num_segments
+    if largest > num_groups:
+        raise GraphInputError(f"graph_index holds graph {largest - 1} but num_graphs is {num_groups}")
+    return num_groups
 
 
-def check_segments(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> int:
-    """Validate (x, index) and return the number of segments."""
-    s = _check_index(index, num_segments)
+def check_groups(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> int:
+    """Validate (x, index) and return the number of groups."""
+    s = _check_index(index, num_groups)
     if not isinstance(x, torch.Tensor):
         raise GraphInputError(f"x must be a torch.Tensor with one row per node; got {type(x).__name__}")
     if x.dim() < 1 or x.shape[0] != index.shape[0]:
@@ -51,30 +52,30 @@ def _expand(index: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
     return index.to(torch.int64).view((-1,) + (1,) * (x.dim() - 1)).expand_as(x)
 
 
-def segment_sum(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> torch.Tensor:
-    """Sum of the rows of each segment: (S, ...)."""
-    s = check_segments(x, index, num_segments)
+def group_sum(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
+    """Sum of the rows of each group: (S, ...)."""
+    s = check_groups(x, index, num_groups)
     out = x.new_zeros((s,) + tuple(x.shape[1:]))
     return out.index_add(0, index.to(torch.int64), x)
 
 
-def segment_count(index: torch.Tensor, num_segments: int | None = None) -> torch.Tensor:
-    """Rows per segment: (S,) int64."""
-    s = _check_index(index, num_segments)
+def group_count(index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
+    """Rows per group: (S,) int64."""
+    s = _check_index(index, num_groups)
     return torch.bincount(index.to(torch.int64), minlength=s)
 
 
-def segment_mean(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> torch.Tensor:
-    """Mean of the rows of each segment (0 for an empty segment): (S, ...)."""
-    s = check_segments(x, index, num_segments)
-    total = segment_sum(x, index, s)
-    count = segment_count(index, s).clamp(min=1).to(total.real.dtype if total.is_complex() else total.dtype)
+def group_mean(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
+    """Mean of the rows of each group (0 for an empty group): (S, ...)."""
+    s = check_groups(x, index, num_groups)
+    total = group_sum(x, index, s)
+    count = group_count(index, s).clamp(min=1).to(total.real.dtype if total.is_complex() else total.dtype)
     return total / count.view((-1,) + (1,) * (x.dim() - 1))
 
 
-def segment_max(x: torch.Tensor, index: torch.Tensor, num_segments: int | None = None) -> torch.Tensor:
-    """Elementwise max over the rows of each segment (0 for an empty segment): (S, ...). Real x only."""
-    s = check_segments(x, index, num_segments)
+def group_max(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
+    """Elementwise max over the rows of each group (0 for an empty group): (S, ...). Real x only."""
+    s = check_groups(x, index, num_groups)
     if x.is_complex():
         raise GraphInputError("x must be real for a max readout; take the modulus or real part first")
     out = x.new_zeros((s,) + tuple(x.shape[1:]))
