@@ -315,7 +315,7 @@ CASES = [
      r"x dtype must be float32, float64, complex64 or complex128; got torch\.int64 \(convert integer features"),
     ("integer parameter dtype for ScaleSelector", lambda: ScaleSelector(4, 2, dtype=torch.int64),
      r"dtype must be torch\.float32 or torch\.float64 \(or complex64/complex128 for that precision\); got torch\.int64"),
-    ("split fraction too small for one link", lambda: split_links(_g(), "direction", 0.1, 0.4),
+    ("split fraction too small for one link", lambda: split_link_orientation(_g(), 0.1, 0.4),
      r"val_fraction = 0\.1 of the 3 eligible links rounds to 0 links; raise val_fraction to at least 0\.167"),
 ]
 
