@@ -1,11 +1,9 @@
 """Over-smoothing: stacked low-pass steps collapse the Dirichlet energy, band-pass wavelets keep it.
 
-Sources for the collapse: Q. Li, Z. Han and X.-M. Wu, Deeper insights into graph convolutional
-networks for semi-supervised learning, AAAI 2018 (repeated Laplacian smoothing makes features
-constant on each component); K. Oono and T. Suzuki, Graph neural networks exponentially lose
-expressive power for node classification, ICLR 2020 (the distance to that subspace shrinks
+Sources for the collapse: Q. Li, Z. Han and X.-M. Wu, AAAI 2018 (repeated Laplacian smoothing makes features
+constant on each component); K. Oono and T. Suzuki, ICLR 2020 (the distance to that subspace shrinks
 geometrically with the number of layers). The band-pass side is the argument of Min et al.
-2020 (Scattering GCN). The thresholds (1% after 16 steps, at least 5% kept) are the
+(NeurIPS 2020). The thresholds (1% after 16 steps, at least 5% kept) are the
 issue's; the graph is generated, connectivity checked with scipy.sparse.csgraph.
 """
 

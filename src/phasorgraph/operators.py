@@ -417,8 +417,7 @@ def renormalized_adjacency(graph: DirectedGraph, *, dtype: Optional[torch.dtype]
     spectrum in (-1, 1].
 
     References:
-        T. N. Kipf and M. Welling, Semi-supervised classification with graph convolutional
-        networks, ICLR 2017.
+        T. N. Kipf and M. Welling, ICLR 2017.
 
     Example:
         >>> g = DirectedGraph.from_edges([[0], [1]], num_nodes=3)
@@ -464,8 +463,7 @@ def magnetic_adjacency(graph: DirectedGraph, charge: float = 0.25, *, phase: str
         SparseOperator, complex Hermitian, spectrum in :math:`[-d_{max}, d_{max}]`.
 
     References:
-        M. A. Shubin, Discrete magnetic Laplacian, Comm. Math. Phys. 1994; X. Zhang et al.,
-        MagNet: a neural network for directed graphs, NeurIPS 2021.
+        M. A. Shubin, Comm. Math. Phys. 1994; X. Zhang et al., NeurIPS 2021.
 
     Example:
         >>> g = DirectedGraph.from_edges([[0], [1]])
@@ -549,7 +547,7 @@ def diffusion(graph: DirectedGraph, charge: Optional[float] = None, *, phase: st
         dtype: float32/float64 for real T (default float32); complex64/complex128 for T(q).
 
     References:
-        R. R. Coifman and M. Maggioni, Diffusion wavelets, ACHA 2006.
+        R. R. Coifman and M. Maggioni, Applied and Computational Harmonic Analysis 2006.
 
     Example:
         >>> g = DirectedGraph.from_edges([[0], [1]])
@@ -647,8 +645,7 @@ def pagerank_laplacian(graph: DirectedGraph, teleport: float = 0.05, *, dtype: O
         tol, max_iter: power-iteration stopping rule (L1 change) for the stationary vector.
 
     References:
-        F. Chung, Laplacians and the Cheeger inequality for directed graphs, Annals of
-        Combinatorics 9 (2005).
+        F. Chung, Annals of Combinatorics 9 (2005).
 
     Example:
         >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
@@ -728,8 +725,7 @@ def proximity_operators(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = 
         can be far more than the edges on graphs with hubs.
 
     References:
-        Z. Tong, Y. Liang, C. Sun, D. S. Rosenblum, A. Lim, Directed graph convolutional network
-        (Digraph inception convolutional networks), NeurIPS 2020.
+        Z. Tong, Y. Liang, C. Sun, D. S. Rosenblum, A. Lim, NeurIPS 2020.
 
     Example:
         >>> g = DirectedGraph.from_edges([[0, 1], [2, 2]])

@@ -78,8 +78,7 @@ class BandMix(nn.Module):
         last_attention (Tensor or None): the (N, C) weights of the last forward (detached).
 
     References:
-        Y. Min et al., Scattering GCN: overcoming oversmoothness in graph
-        convolutional networks, NeurIPS 2020.
+        Y. Min et al., NeurIPS 2020.
 
     Example:
         >>> import torch

@@ -123,9 +123,8 @@ class ChebyshevFilter(ChebyshevBase):
         bias: (C_out,) (or (C_out, 2) pairs), same distribution; None when ``bias=False``.
 
     References:
-        M. Defferrard, X. Bresson, P. Vandergheynst, Convolutional neural networks on graphs with
-        fast localized spectral filtering, NeurIPS 2016. D. K. Hammond, P. Vandergheynst,
-        R. Gribonval, Wavelets on graphs via spectral graph theory, ACHA 2011.
+        M. Defferrard, X. Bresson, P. Vandergheynst, NeurIPS 2016. D. K. Hammond,
+        P. Vandergheynst, R. Gribonval, Applied and Computational Harmonic Analysis 2011.
 
     Example:
         >>> import torch
@@ -192,8 +191,7 @@ class RenormalizedFilter(nn.Module):
         bias: (C_out,), same distribution; None when ``bias=False``.
 
     References:
-        T. N. Kipf and M. Welling, Semi-supervised classification with graph convolutional
-        networks, ICLR 2017.
+        T. N. Kipf and M. Welling, ICLR 2017.
 
     Example:
         >>> import torch
@@ -362,8 +360,7 @@ class SpectralMultiplier(nn.Module):
         bias: (C_out,), same distribution; None when ``bias=False``.
 
     References:
-        J. Bruna, W. Zaremba, A. Szlam, Y. LeCun, Spectral networks and locally connected
-        networks on graphs, ICLR 2014.
+        J. Bruna, W. Zaremba, A. Szlam, Y. LeCun, ICLR 2014.
 
     Example:
         >>> import torch

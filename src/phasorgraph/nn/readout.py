@@ -57,7 +57,7 @@ class MomentReadout(nn.Module):
         - output: (G, K C), column ``(k - 1) C + c`` holding moment k of channel c.
 
     References:
-        F. Gao et al., Geometric scattering for graph data analysis, ICML 2019.
+        F. Gao et al., ICML 2019.
 
     Example:
         >>> import torch

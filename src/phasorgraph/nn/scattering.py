@@ -85,8 +85,8 @@ class DiffusionScattering(nn.Module):
         num_coefficients (int): K.
 
     References:
-        F. Gama, A. Ribeiro and J. Bruna, Diffusion scattering transforms on graphs, ICLR 2019.
-        F. Gao et al., Geometric scattering for graph data analysis, ICML 2019.
+        F. Gama, A. Ribeiro and J. Bruna, ICLR 2019.
+        F. Gao et al., ICML 2019.
 
     Example:
         >>> import torch

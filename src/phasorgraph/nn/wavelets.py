@@ -47,9 +47,8 @@ class DiffusionWavelets(nn.Module):
         steps (tuple of int): the diffusion times :math:`1, 2, 4, \dots, 2^J` that bound the bands.
 
     References:
-        R. R. Coifman and M. Maggioni, Diffusion wavelets, ACHA 2006. F. Gama, A. Ribeiro and
-        J. Bruna, Diffusion scattering transforms on graphs, ICLR 2019. F. Gao et al.,
-        Geometric scattering for graph data analysis, ICML 2019.
+        R. R. Coifman and M. Maggioni, Applied and Computational Harmonic Analysis 2006.
+        F. Gama, A. Ribeiro and J. Bruna, ICLR 2019. F. Gao et al., ICML 2019.
 
     Example:
         >>> import torch
@@ -112,8 +111,7 @@ class ScaleSelector(nn.Module):
         selection (Tensor, property): :math:`F = \mathrm{softmax}(W, \dim=1)`.
 
     References:
-        A. Tong et al., Data-driven learning of
-        geometric scattering modules for GNNs, IEEE MLSP 2021 (parametrization as recalled
+        A. Tong et al., IEEE MLSP 2021 (parametrization as recalled
         from memory; documented above so it can be checked).
 
     Example:
