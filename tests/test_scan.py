@@ -13,7 +13,7 @@ import torch
 
 import phasorgraph as pg
 from phasorgraph import GraphInputError
-from phasorgraph.data import directed_block_model, split_links, split_nodes
+from phasorgraph.data import directed_block_model, split_link_orientation, split_nodes
 from phasorgraph.scan import charges as scan_mod
 from phasorgraph.scan import magnetic_chebyshev_terms, randomize_orientation, scan_charges
 
@@ -197,7 +197,7 @@ def test_regression_variant_scores_r2():
 
 def test_link_variant_scores_auc_on_held_out_pairs():
     g, _ = _flow_graph(seed=5, sizes=(60, 60, 60))
-    split = split_links(g, task="direction", val_fraction=0.2, test_fraction=0.2, seed=0)
+    split = split_link_orientation(g, val_fraction=0.2, test_fraction=0.2, seed=0)
     result = scan_charges(split, torch.ones(g.num_nodes, 1), charges=[0, 0.25], permutations=3, seed=0,
                           progress=False)
     assert result.task == "link" and result.metric == "AUC"

@@ -630,7 +630,8 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
     ``phase="sign"``.
 
     Args:
-        graph: a DirectedGraph, or a LinkSplit from :func:`phasorgraph.data.split_links` (then
+        graph: a DirectedGraph, or a LinkSplit from :func:`phasorgraph.data.split_link_orientation` or
+            :func:`~phasorgraph.data.split_link_presence` (then
             ``y`` must be None: the held-out pairs of ``split.val`` and ``split.test`` and their
             labels are scored on ``split.train_graph``, which does not contain them; the
             training pairs are left out because their own edges, direction included, are in
