@@ -10,12 +10,15 @@ import json
 import numpy as np
 import pytest
 import torch
+from hypothesis import given
+from hypothesis import strategies as st
 
 import phasorgraph as pg
 from phasorgraph import GraphInputError
 from phasorgraph.data import directed_block_model, split_link_orientation, split_nodes
 from phasorgraph.scan import charges as scan_mod
 from phasorgraph.scan import magnetic_chebyshev_terms, randomize_orientation, scan_charges
+from strategies import charges, directed_graphs
 
 FLOW = [[0.5, 0.85, 0.85], [0.15, 0.5, 0.85], [0.15, 0.15, 0.5]]  # block a ships to block b > a
 NO_FLOW = [[0.5] * 3] * 3  # every edge points either way with probability 1/2
@@ -76,6 +79,22 @@ def test_randomized_orientation_keeps_the_undirected_weighted_structure():
         assert sorted(B[B > 0].tolist()) == sorted(A[A > 0].tolist())  # the same weights
         flipped_any |= not np.array_equal(A, B)
     assert flipped_any
+
+
+@given(directed_graphs(max_nodes=10), st.integers(0, 2**31 - 1), charges())
+def test_property_randomized_orientation_keeps_as_and_the_charge_zero_terms(graph, seed, q):
+    # invariant: only orientations change, so A + A^T is unchanged, hence the q = 0 terms (which
+    # depend on As alone) and, at every charge, the moduli |H(q)| = As of the magnetic adjacency
+    h = randomize_orientation(graph, np.random.default_rng(seed))
+    A, B = graph.to_scipy().toarray(), h.to_scipy().toarray()
+    np.testing.assert_array_equal(A + A.T, B + B.T)
+    x = np.random.default_rng(0).standard_normal((graph.num_nodes, 2))
+    t0 = magnetic_chebyshev_terms(graph, x, 0.0, order=2, dtype=torch.complex128).numpy()
+    u0 = magnetic_chebyshev_terms(h, x, 0.0, order=2, dtype=torch.complex128).numpy()
+    np.testing.assert_allclose(t0, u0, atol=1e-12)
+    ha = pg.magnetic_adjacency(graph, q, dtype=torch.complex128).to_dense().abs().numpy()
+    hb = pg.magnetic_adjacency(h, q, dtype=torch.complex128).to_dense().abs().numpy()
+    np.testing.assert_allclose(ha, hb, atol=1e-12)
 
 
 # ---------------------------------------------------------------------- models and intervals
