@@ -55,7 +55,7 @@ def test_terms_at_charge_zero_are_the_real_chebyshev_terms_of_the_normalized_lap
 
 
 def test_terms_at_a_charge_match_the_dense_hermitian_reference():
-    # closed form H(q) = As * exp(i 2 pi q (A - A^T)) (Zhang et al. 2021), then numpy.linalg.eigh
+    # closed form H(q) = As * exp(i 2 pi q (A - A^T)) (Zhang et al., NeurIPS 2021), then numpy.linalg.eigh
     g, _ = _flow_graph(seed=2, sizes=(5, 5), density=0.5, flow=[[0.5, 0.8], [0.2, 0.5]])
     A = g.to_scipy().toarray()
     H = (A + A.T) / 2 * np.exp(1j * 2 * np.pi * 0.2 * (A - A.T))
@@ -141,7 +141,7 @@ def test_corrected_interval_is_the_nadeau_bengio_t_interval():
 
 
 def test_auc_matches_the_pairwise_definition():
-    # AUC = P(score of a positive > score of a negative) + 1/2 P(tie) (Hanley and McNeil 1982)
+    # AUC = P(score of a positive > score of a negative) + 1/2 P(tie) (Hanley and McNeil, Radiology 1982)
     rng = np.random.default_rng(3)
     s = rng.integers(0, 5, size=40).astype(float)
     y = (rng.random(40) < 0.4).astype(int)

@@ -46,7 +46,7 @@ def magnetic_chebyshev_terms(graph: DirectedGraph, x: Any, charge: float, order:
     :math:`L(q) = I - D^{-1/2} H(q) D^{-1/2}` (:func:`phasorgraph.operators.magnetic_laplacian`)
     has spectrum in [0, 2], so :math:`\tilde L = L(q) - I` has spectrum in [-1, 1] and
     :math:`T_0 = X`, :math:`T_1 = \tilde L X`, :math:`T_k = 2 \tilde L T_{k-1} - T_{k-2}`
-    (Hammond et al. 2011). At q = 0 they are the real Chebyshev terms of the normalized
+    (Hammond et al., ACHA 2011). At q = 0 they are the real Chebyshev terms of the normalized
     Laplacian of :math:`A_s`; for q > 0 their imaginary parts carry the direction of the edges.
     ``order`` sparse products, memory O(nnz + order N F).
 
@@ -229,7 +229,7 @@ def _fit_scores(Z: np.ndarray, target: np.ndarray, test: np.ndarray, task: str, 
 
 
 def _auc(scores: np.ndarray, labels: np.ndarray) -> float:
-    """AUC by the rank formula (Mann-Whitney U; Hanley and McNeil 1982), ties given average ranks."""
+    """AUC by the rank formula (Mann-Whitney U; Hanley and McNeil, Radiology 1982), ties given average ranks."""
     pos = labels == 1
     n_pos, n_neg = int(pos.sum()), int((~pos).sum())
     if n_pos == 0 or n_neg == 0:
