@@ -375,11 +375,11 @@ class _HaloPlan:
 
 def _as_real_2d(x: torch.Tensor) -> tuple:
     """(N, ...) real or complex as a real contiguous (N, W') block and how to undo it."""
-    n = x.shape[0]
+    n, width = x.shape[0], math.prod(x.shape[1:])
     if x.is_complex():
-        r = torch.view_as_real(x.resolve_conj().resolve_neg().contiguous()).reshape(n, -1)
+        r = torch.view_as_real(x.resolve_conj().resolve_neg().contiguous()).reshape(n, 2 * width)
         return r, True
-    return x.reshape(n, -1), False
+    return x.reshape(n, width), False
 
 
 def _from_real_2d(r: torch.Tensor, is_complex: bool, tail: tuple) -> torch.Tensor:
@@ -443,6 +443,12 @@ class _ShardedHermitianProduct(torch.autograd.Function):
         if g.is_complex() and not ctx.x_is_complex:
             g = g.real
         return g, None
+
+
+def _no_rows(ext: torch.Tensor, dtype: torch.dtype) -> torch.Tensor:
+    """The (0, ...) result of a rank without rows, still attached to ``ext`` (its halo exchange
+    must run in the backward like everyone else's)."""
+    return torch.zeros(ext.shape, dtype=dtype, device=ext.device) + ext.sum() * 0
 
 
 class ShardedOperator(SparseOperator):
@@ -555,8 +561,8 @@ class ShardedOperator(SparseOperator):
         if self.hermitian:
             return _ShardedHermitianProduct.apply(x, self)
         ext = self._extended(x, halo_exchange(self._shard._plan, x))
-        if ext.shape[0] == 0:
-            return x.new_zeros(x.shape, dtype=torch.promote_types(x.dtype, self.dtype)) + x.sum() * 0
+        if ext.shape[0] == 0:  # an empty part: no rows, but the exchange stays in the backward
+            return _no_rows(ext, torch.promote_types(x.dtype, self.dtype))
         return general_matmul(self._local, ext)[: self.num_rows]
 
     __matmul__ = matmul
@@ -876,9 +882,9 @@ class GraphShard:
                 raise GraphInputError(f"x must have the {n_own} owned rows of this shard (shape (N_own, ...)); "
                                       f"got shape {tuple(getattr(x, 'shape', ()))}")
             ext = torch.cat([x, halo_exchange(plan, x)], dim=0)
-            if ext.shape[0] == 0:
+            if ext.shape[0] == 0:  # an empty part: no rows, but the exchange stays in the backward
                 cdt = torch.complex128 if charge.dtype == torch.float64 else torch.complex64
-                return x.to(cdt) + charge * 0
+                return _no_rows(ext, cdt) + charge * 0
             return local_apply(ext)[:n_own]
 
         return apply
