@@ -71,8 +71,9 @@ def diffusion_powers(T: SparseOperator, scale: Optional[torch.Tensor], x2d: torc
     on the Hermitian kernel. Steps may repeat and come in any order; 0 gives x itself.
     """
     wanted = sorted(set(int(k) for k in steps))
-    if x2d.numel() == 0:
-        # nothing to multiply (empty graph or no channels); sparse.py cannot reshape (0, -1)
+    if T.num_nodes == 0 or x2d.shape[1] == 0:
+        # nothing to multiply (empty graph or no channels). Tested on the whole graph's node
+        # count, not on x's rows: a shard that owns no rows still joins every product.
         dtype = T.dtype if T.is_complex and not x2d.is_complex() else x2d.dtype
         return [x2d.to(dtype).clone() for _ in steps]
     z = _scaled(x2d, scale, inverse=True)
