@@ -19,6 +19,8 @@ from __future__ import annotations
 
 import datetime
 import os
+import runpy
+import sys
 import time
 from pathlib import Path
 
@@ -33,6 +35,8 @@ from hypothesis import strategies as st
 from phasorgraph import DirectedGraph, GraphInputError
 from phasorgraph import operators as O
 from phasorgraph.distributed import GraphShard, NodePartition, partition_nodes
+from phasorgraph.nn import (ChebyshevFilter, DiffusionScattering, DiffusionWavelets, LearnedCharge, MagneticFilter,
+                            RenormalizedFilter)
 
 from strategies import directed_graphs
 
@@ -42,6 +46,7 @@ ROOT = Path(__file__).resolve().parents[1]
 # The ranks are single-threaded, and this process keeps one torch thread (conftest.py).
 START_METHOD = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
 F64, C128 = torch.float64, torch.complex128
+STEPS, LR = 3, 0.3
 
 BUILDERS = [
     ("normalized_laplacian", O.normalized_laplacian, {"dtype": F64}),
@@ -93,11 +98,57 @@ def node_weights(n: int) -> torch.Tensor:
     return torch.rand(n, dtype=F64, generator=torch.Generator().manual_seed(11)) + 0.5
 
 
+def layer_cases():
+    """name -> (make_layer, input kind): "graph" passes the graph-like (DirectedGraph or shard),
+    otherwise the name of the operator in BUILDERS."""
+    return {
+        "chebyshev": (lambda: ChebyshevFilter(3, 4, order=3, max_eigenvalue=2.0, dtype=F64), "normalized_laplacian"),
+        "chebyshev_magnetic": (lambda: ChebyshevFilter(3, 4, order=2, max_eigenvalue=2.0, complex_weights=True, dtype=F64),
+                               "magnetic_laplacian"),
+        "magnetic_fixed": (lambda: MagneticFilter(3, 4, order=2, charge=0.2, dtype=F64), "graph"),
+        "magnetic_bank": (lambda: MagneticFilter(3, 4, order=2, charge=[0.0, 0.25], dtype=F64), "graph"),
+        "magnetic_learned": (lambda: MagneticFilter(3, 4, order=2, charge=LearnedCharge(0.1), dtype=F64), "graph"),
+        "renormalized_graph": (lambda: RenormalizedFilter(3, 4, dtype=F64), "graph"),
+        "renormalized_op": (lambda: RenormalizedFilter(3, 2, dtype=F64), "renormalized_adjacency"),
+        "wavelets": (lambda: DiffusionWavelets(2), "diffusion"),
+        "wavelets_walk": (lambda: DiffusionWavelets(2), "random_walk"),
+        "wavelets_magnetic": (lambda: DiffusionWavelets(2), "magnetic_diffusion"),
+        "scattering": (lambda: DiffusionScattering(3, scales=2, order=2, out_channels=4, dtype=F64), "diffusion"),
+    }
+
+
 def _operator_of(graph_like, name):
     _, builder, kwargs = next(b for b in BUILDERS if b[0] == name)
     if isinstance(graph_like, DirectedGraph):
         return builder(graph_like, **kwargs)
     return graph_like.operator(builder, **kwargs)
+
+
+def run_layer(name, graph_like, x):
+    """(output, loss) of one layer case; the loss weights each node's squared modulus."""
+    torch.manual_seed(3)
+    make, kind = layer_cases()[name]
+    layer = make()
+    arg = graph_like if kind == "graph" else _operator_of(graph_like, kind)
+    out = layer(x, arg)
+    return layer, out
+
+
+class DDPModel(torch.nn.Module):
+    """A learned-charge MagneticFilter, modulus, then a ChebyshevFilter on the normalized Laplacian."""
+
+    def __init__(self):
+        super().__init__()
+        self.magnetic = MagneticFilter(3, 4, order=2, charge=LearnedCharge(0.1), dtype=F64)
+        self.chebyshev = ChebyshevFilter(4, 1, order=2, max_eigenvalue=2.0, dtype=F64)
+
+    def forward(self, x, graph_like):
+        h = self.magnetic(x, graph_like).abs()
+        return self.chebyshev(h, _operator_of(graph_like, "normalized_laplacian")).squeeze(-1)
+
+
+def ddp_targets(n: int) -> torch.Tensor:
+    return torch.randn(n, dtype=F64, generator=torch.Generator().manual_seed(21))
 
 
 # ---------------------------------------------------------------------- replicated wrappers for gradcheck
@@ -199,8 +250,30 @@ def _checks(rank: int, world: int) -> dict:
     sl = slice(rank, None, world)
     other = GraphShard.from_local_edges(g.source[sl], g.target[sl], g.weight[sl], g.num_nodes, part)
     res["local_edges_dense"] = other.operator(O.magnetic_laplacian, charge=0.2, dtype=C128).to_dense()
+    # layers
+    layers = {}
+    for name in layer_cases():
+        xl = x[nodes].clone().requires_grad_()
+        layer, out = run_layer(name, shard, xl)
+        loss = (out.abs() ** 2 * c.reshape((-1,) + (1,) * (out.dim() - 1))).sum()
+        loss.backward()
+        layers[name] = {"out": out.detach(), "x_grad": xl.grad,
+                        "param_grads": {k: p.grad.clone() for k, p in layer.named_parameters()}}
+    res["layers"] = layers
     # gradcheck of the custom autograd functions on a replicated function
     res["gradcheck"] = _gradchecks(world)
+    # DDP: a few SGD steps on per-rank losses
+    torch.manual_seed(5)
+    model = DDPModel()
+    ddp = torch.nn.parallel.DistributedDataParallel(model)
+    opt = torch.optim.SGD(ddp.parameters(), lr=LR)
+    y = ddp_targets(g.num_nodes)[nodes]
+    for _ in range(STEPS):
+        opt.zero_grad()
+        loss = ((ddp(x[nodes], shard) - y) ** 2).sum() / g.num_nodes
+        loss.backward()
+        opt.step()
+    res["ddp_final"] = {k: v.detach().clone() for k, v in model.state_dict().items()}
     # bad partitions and bad input on one rank only: every rank gets a GraphInputError
     errors = {}
     for key, bad in (("wrong_length", torch.zeros(g.num_nodes - 1, dtype=torch.int64)),
@@ -220,6 +293,15 @@ def _checks(rank: int, world: int) -> dict:
     except GraphInputError as exc:
         errors["one_rank_bad"] = str(exc)
     res["errors"] = errors
+    if world == 2:  # the tutorial, as torchrun would run it (the process group is already up)
+        argv = sys.argv
+        sys.argv = ["07_one_graph_many_ranks.py", "--quick"]
+        sys.path.insert(0, str(ROOT / "tutorials"))
+        try:
+            runpy.run_path(str(ROOT / "tutorials" / "07_one_graph_many_ranks.py"), run_name="__main__")
+            res["tutorial"] = "ok"
+        finally:
+            sys.argv = argv
     return res
 
 
@@ -234,6 +316,10 @@ def _worker(rank: int, world: int, init_file: str, out_dir: str) -> None:
 
 
 def run_world(world: int, tmp_path, timeout_s: float = 240.0) -> list:
+    # DistributedDataParallel and gradcheck import torch._dynamo (and sympy) on first use: about
+    # 10 s of CPU. Imported once here, before the fork, instead of once in every rank at once.
+    import torch._dynamo  # noqa: F401
+
     ctx = mp.start_processes(_worker, args=(world, str(tmp_path / "rendezvous"), str(tmp_path)), nprocs=world,
                              join=False, start_method=START_METHOD)
     deadline = time.monotonic() + timeout_s
@@ -301,10 +387,47 @@ def test_sharded_operators_are_the_owned_rows(spawned, world):
 
 
 @WORLDS
+@pytest.mark.parametrize("name", sorted(layer_cases()))
+def test_layers_on_shards_match_one_process(spawned, world, name):
+    ranks = spawned(world)
+    g = shared_graph()
+    x = features(g.num_nodes).requires_grad_()
+    c = node_weights(g.num_nodes)
+    layer, out = run_layer(name, g, x)
+    (out.abs() ** 2 * c.reshape((-1,) + (1,) * (out.dim() - 1))).sum().backward()
+    for r in ranks:
+        got = r["layers"][name]
+        close(got["out"], out.detach()[r["nodes"]])
+        close(got["x_grad"], x.grad[r["nodes"]])
+    for k, p in layer.named_parameters():  # the gradient of a sum of losses: the sum over ranks
+        close(sum(r["layers"][name]["param_grads"][k] for r in ranks), p.grad)
+
+
+@WORLDS
 def test_custom_autograd_functions_pass_gradcheck(spawned, world):
     ranks = spawned(world)
     for r in ranks:
         assert r["gradcheck"] and all(r["gradcheck"].values()), r["gradcheck"]
+
+
+@WORLDS
+def test_ddp_steps_match_one_process(spawned, world):
+    ranks = spawned(world)
+    g = shared_graph()
+    torch.manual_seed(5)
+    model = DDPModel()
+    opt = torch.optim.SGD(model.parameters(), lr=LR)
+    x, y = features(g.num_nodes), ddp_targets(g.num_nodes)
+    start = {k: v.clone() for k, v in model.state_dict().items()}
+    for _ in range(STEPS):
+        opt.zero_grad()
+        (((model(x, g) - y) ** 2).sum() / g.num_nodes / world).backward()  # DDP averages over ranks
+        opt.step()
+    final = model.state_dict()
+    assert not torch.equal(final["magnetic.charge_logit"], start["magnetic.charge_logit"])  # q is learned
+    for r in ranks:
+        for k in final:
+            close(r["ddp_final"][k], final[k])
 
 
 @WORLDS
@@ -318,6 +441,11 @@ def test_bad_partitions_raise_on_every_rank(spawned, world):
         assert e["one_rank_bad"] is not None
     assert "source holds node 39" in ranks[0]["errors"]["one_rank_bad"]
     assert "another rank refused its input" in ranks[1]["errors"]["one_rank_bad"]
+
+
+def test_tutorial_runs_under_two_ranks(spawned):
+    ranks = spawned(2)
+    assert ranks[0]["tutorial"] == "ok"
 
 
 # ---------------------------------------------------------------------- partitions (one process, no spawn)

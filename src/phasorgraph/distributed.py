@@ -468,8 +468,8 @@ class ShardedOperator(SparseOperator):
         shape: (num_rows, N), the block of rows this rank holds.
         hermitian, spectrum, kind, similar: as for the whole graph's operator (the spectrum
             interval agreed over ranks; ``similar`` holds a sharded base and the owned scale).
-        lmax: largest eigenvalue if known. A sharded operator does not compute it: pass it to the
-            layer (``lmax=2.0`` for normalized Laplacians) or set it.
+        max_eigenvalue: largest eigenvalue if known. A sharded operator does not compute it: pass
+            it to the layer (``max_eigenvalue=2.0`` for normalized Laplacians) or set it here.
 
     Example:
         >>> import torch
@@ -482,7 +482,7 @@ class ShardedOperator(SparseOperator):
     """
 
     def __init__(self, local: SparseOperator, shard: "GraphShard", *, spectrum, similar=None,
-                 lmax: Optional[float] = None):
+                 max_eigenvalue: Optional[float] = None):
         n_own = shard.num_rows
         self.matrix = _owned_rows(local.matrix, n_own)
         self.hermitian = local.hermitian
@@ -490,20 +490,12 @@ class ShardedOperator(SparseOperator):
         self.kind = local.kind
         self.low_rank = None
         self.similar = similar
-        self._lmax = lmax
+        self.max_eigenvalue = max_eigenvalue
         self._adjoint = None
         self._shard = shard
         self._local = SparseOperator(self.matrix, hermitian=False, kind=local.kind + "_owned_rows")
 
     # ------------------------------------------------------------------ facts
-    @property
-    def lmax(self):
-        return self._lmax
-
-    @lmax.setter
-    def lmax(self, value):
-        self._lmax = value
-
     @property
     def num_rows(self) -> int:
         return self._shard.num_rows
@@ -567,6 +559,17 @@ class ShardedOperator(SparseOperator):
 
     __matmul__ = matmul
 
+    def matmul_add(self, x: torch.Tensor, z: Optional[torch.Tensor] = None, *, alpha: float = 1.0,
+                   beta: float = 1.0, shift: float = 0.0) -> torch.Tensor:
+        """``alpha A x + shift x + beta z`` on the owned rows (the sharded product, then the sum). Collective."""
+        y = self.matmul(x)
+        y = y.mul(alpha) if alpha != 1 else y
+        if shift:
+            y = y + shift * x
+        if z is not None and beta:
+            y = y + beta * z
+        return y
+
     def transpose_conj(self) -> "ShardedOperator":
         if self.hermitian:
             return self
@@ -582,7 +585,8 @@ class ShardedOperator(SparseOperator):
             base, scale = self.similar
             real = local.matrix.real.dtype if local.is_complex else local.dtype
             similar = (base.to(dtype, device), scale.to(device=local.device, dtype=real))
-        return ShardedOperator(local, self._shard, spectrum=self.spectrum, similar=similar, lmax=self.lmax)
+        return ShardedOperator(local, self._shard, spectrum=self.spectrum, similar=similar,
+                               max_eigenvalue=self.max_eigenvalue)
 
     def to_dense(self) -> torch.Tensor:
         """The owned rows as a dense (num_rows, N) block. Small graphs only (N columns)."""
@@ -819,8 +823,8 @@ class GraphShard:
                    local_graph=local_graph, plan=plan, num_local_edges=base.num_edges)
 
     # ------------------------------------------------------------------ graph-like protocol
-    def operator(self, builder: Callable, **kwargs) -> ShardedOperator:
-        r"""Collective, cached: the owned rows of ``builder(whole_graph, **kwargs)``.
+    def operator(self, builder: Callable, *, device: Any = None, **options) -> ShardedOperator:
+        r"""Collective, cached: the owned rows of ``builder(whole_graph, **options)``, on ``device``.
 
         ``builder`` is one of :data:`LOCAL_BUILDERS` (``operators.normalized_laplacian``,
         ``magnetic_laplacian``, ``diffusion``, ``renormalized_adjacency``, ``random_walk``, ...).
@@ -842,11 +846,14 @@ class GraphShard:
                 f"builder must be one of the operators whose rows depend only on the edges and degrees "
                 f"around each node ({names}); got {getattr(builder, '__name__', builder)!r} "
                 f"(pagerank_laplacian and proximity_operators need the whole graph)")
-        key = (builder.__name__,) + tuple(sorted((k, repr(v)) for k, v in kwargs.items()))
+        where = None if device is None else str(torch.device(device))
+        key = (builder.__name__, where) + tuple(sorted((k, repr(v)) for k, v in options.items()))
         cached = self._operators.get(key)
         if cached is not None:
             return cached
-        op = self._shard_operator(builder(self.local_graph, **kwargs))
+        op = self._shard_operator(builder(self.local_graph, **options))
+        if where is not None and str(op.device) != where:
+            op = op.to(device=where)
         self._operators[key] = op
         return op
 
