@@ -40,6 +40,9 @@ CASES = {
     "05_drop_in.py": (["--no-plot"], ["The whole change", "after: + MagneticFilter", "before: MLP on features"], None),
     "06_does_direction_help.py": ([], ["charge scan (classification", "scan verdict: ", "Magnetic, q = 0 (symmetric)",
                                        "gain norm at eigenvalue"], "06_filter_response.png"),
+    # here as one process; tests/test_graph_shards.py runs it on two ranks
+    "07_one_graph_many_ranks.py": ([], ["Partitions into 1 block(s)", "max |sharded - whole graph|",
+                                        "Tier classification, trained on 1 rank(s)"], None),
 }
 
 
