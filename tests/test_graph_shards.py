@@ -324,6 +324,16 @@ def run_world(world: int, tmp_path, timeout_s: float = 240.0) -> list:
     # 10 s of CPU. Imported once here, before the fork, instead of once in every rank at once.
     import torch._dynamo  # noqa: F401
 
+    # likewise the native kernels: compile (or load from numba's cache) the products the ranks
+    # use, once, so that the forked ranks inherit them
+    g = small_graph()
+    for name, builder, kwargs in BUILDERS:
+        x = features(g.num_nodes).requires_grad_()
+        op = builder(g, **kwargs)
+        op.matmul_add(x, x, alpha=0.5, shift=0.25).abs().sum().backward()
+    q = torch.tensor(0.1, dtype=F64, requires_grad=True)
+    g.magnetic_product(q)(features(g.num_nodes)).abs().sum().backward()
+
     ctx = mp.start_processes(_worker, args=(world, str(tmp_path / "rendezvous"), str(tmp_path)), nprocs=world,
                              join=False, start_method=START_METHOD)
     deadline = time.monotonic() + timeout_s
