@@ -99,6 +99,15 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
     refresh = check_flag("refresh", refresh)
     if op.max_eigenvalue is not None and not refresh:
         return op.max_eigenvalue
+    if op.num_rows != op.num_nodes:
+        # an operator holding some rows of a larger one (a shard of a distributed graph): only
+        # it can run the collective computation, on every rank at once
+        collective = getattr(op, "collective_max_eigenvalue", None)
+        if collective is None:
+            raise GraphInputError(f"op holds {op.num_rows} of the {op.num_nodes} rows of its operator and "
+                                  f"offers no collective_max_eigenvalue(); pass max_eigenvalue explicitly")
+        op.max_eigenvalue = float(collective(tol=tol))
+        return op.max_eigenvalue
     n = op.num_rows
     if n == 0:
         op.max_eigenvalue = 0.0
@@ -128,6 +137,11 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
 
 def _dense(op: SparseOperator, max_nodes: int, name: str = "op") -> np.ndarray:
     max_nodes = check_int("max_nodes", max_nodes)
+    if op.num_rows != op.num_nodes:
+        raise GraphInputError(
+            f"{name} holds {op.num_rows} of the {op.num_nodes} rows of its operator (a shard of a distributed "
+            f"graph); this small-graph utility needs the whole operator on one process"
+        )
     if op.num_rows > max_nodes:
         raise GraphInputError(
             f"{name} has {op.num_rows} nodes but this small-graph utility builds a dense N x N "
