@@ -38,7 +38,7 @@ from phasorgraph import DirectedGraph, GraphInputError
 from phasorgraph import operators as O
 from phasorgraph.distributed import GraphShard, NodePartition, partition_nodes
 from phasorgraph.nn import (ChebyshevFilter, DiffusionScattering, DiffusionWavelets, LearnedCharge, MagneticFilter,
-                            RenormalizedFilter)
+                            RenormalizedFilter, SpectralMultiplier)
 
 from strategies import directed_graphs
 
@@ -107,6 +107,8 @@ def layer_cases():
         "chebyshev": (lambda: ChebyshevFilter(3, 4, order=3, max_eigenvalue=2.0, dtype=F64), "normalized_laplacian"),
         "chebyshev_magnetic": (lambda: ChebyshevFilter(3, 4, order=2, max_eigenvalue=2.0, complex_weights=True, dtype=F64),
                                "magnetic_laplacian"),
+        # no max_eigenvalue: computed (one process: numpy eigvalsh; shards: collective Lanczos)
+        "chebyshev_eigenvalue": (lambda: ChebyshevFilter(3, 4, order=2, dtype=F64), "combinatorial_laplacian"),
         "magnetic_fixed": (lambda: MagneticFilter(3, 4, order=2, charge=0.2, dtype=F64), "graph"),
         "magnetic_bank": (lambda: MagneticFilter(3, 4, order=2, charge=[0.0, 0.25], dtype=F64), "graph"),
         "magnetic_learned": (lambda: MagneticFilter(3, 4, order=2, charge=LearnedCharge(0.1), dtype=F64), "graph"),
@@ -294,6 +296,11 @@ def _checks(rank: int, world: int) -> dict:
         errors["one_rank_bad"] = None
     except GraphInputError as exc:
         errors["one_rank_bad"] = str(exc)
+    try:  # a dense eigenbasis needs the whole operator
+        SpectralMultiplier(3, 2, knots=[0.0, 1.0, 2.0], dtype=F64)(x[nodes], shard.operator(O.normalized_laplacian, dtype=F64))
+        errors["spectral_multiplier"] = None
+    except GraphInputError as exc:
+        errors["spectral_multiplier"] = str(exc)
     res["errors"] = errors
     if world == 2:  # the tutorial, as torchrun would run it (the process group is already up)
         argv = sys.argv
@@ -454,6 +461,8 @@ def test_bad_partitions_raise_on_every_rank(spawned, world):
         assert f"partition has {world + 1} parts but the process group has {world} ranks" in e["wrong_parts"]
         assert e["one_rank_bad"] is not None
     assert "source holds node 39" in ranks[0]["errors"]["one_rank_bad"]
+    # rank 0 owns 17 rows at world 2 and 23 at world 3
+    assert f"holds {ranks[0]['nodes'].numel()} of the 34 rows of its operator" in ranks[0]["errors"]["spectral_multiplier"]
     assert "another rank refused its input" in ranks[1]["errors"]["one_rank_bad"]
 
 

@@ -468,8 +468,8 @@ class ShardedOperator(SparseOperator):
         shape: (num_rows, N), the block of rows this rank holds.
         hermitian, spectrum, kind, similar: as for the whole graph's operator (the spectrum
             interval agreed over ranks; ``similar`` holds a sharded base and the owned scale).
-        max_eigenvalue: largest eigenvalue if known. A sharded operator does not compute it: pass
-            it to the layer (``max_eigenvalue=2.0`` for normalized Laplacians) or set it here.
+        max_eigenvalue: largest eigenvalue if known; :func:`phasorgraph.spectral.largest_eigenvalue`
+            computes it collectively (:meth:`collective_max_eigenvalue`) when a layer needs it.
 
     Example:
         >>> import torch
@@ -569,6 +569,65 @@ class ShardedOperator(SparseOperator):
         if z is not None and beta:
             y = y + beta * z
         return y
+
+    def collective_max_eigenvalue(self, *, tol: float = 1e-8, max_steps: int = 300) -> float:
+        r"""Collective: the largest eigenvalue, by Lanczos on the distributed vectors.
+
+        Every rank keeps only its rows of the Lanczos vectors; inner products are summed over
+        ranks (``all_reduce``) and each step re-orthogonalizes against all earlier vectors (twice,
+        classical Gram-Schmidt), so in exact arithmetic N steps give the exact top eigenvalue.
+        It stops when the top Ritz value changes by less than ``tol`` times its size over 3
+        steps, when the Krylov space is exhausted, or after ``max_steps``. The start vector is a
+        fixed function of the global node ids, so the result does not depend on the partition.
+        :func:`phasorgraph.spectral.largest_eigenvalue` calls this for a sharded operator (and
+        stores the value in ``max_eigenvalue``). A non-Hermitian operator uses its Hermitian
+        ``similar`` base (same eigenvalues).
+        """
+        if not self.hermitian:
+            if self.similar is None:
+                raise GraphInputError(f"op (kind {self.kind!r}) is neither Hermitian nor similar to a Hermitian "
+                                      f"operator; its largest eigenvalue is not computed on shards")
+            return self.similar[0].collective_max_eigenvalue(tol=tol, max_steps=max_steps)
+        shard = self._shard
+        n = self.num_nodes
+        if n == 0:
+            return 0.0
+        dtype = torch.complex128 if self.is_complex else torch.float64
+        op = self.to(dtype)
+
+        def total(t: torch.Tensor) -> torch.Tensor:
+            if shard.world_size > 1:
+                r = torch.view_as_real(t).contiguous() if t.is_complex() else t.contiguous()
+                dist.all_reduce(r, group=shard.group)
+                t = torch.view_as_complex(r) if t.is_complex() else r
+            return t
+
+        ids = shard.nodes.to(torch.float64)
+        v = torch.frac(torch.sin(ids * 12.9898 + 1.0) * 43758.5453) - 0.5  # a fixed pseudo-random start
+        if self.is_complex:
+            v = torch.complex(v, torch.frac(torch.cos(ids * 78.233 + 2.0) * 24634.6345) - 0.5)
+        v = v.to(dtype).reshape(-1, 1)
+        v = v / total((v.conj() * v).real.sum()).sqrt()
+        basis = v
+        alphas, betas, history = [], [], []
+        with torch.no_grad():
+            for step in range(min(n, max_steps)):
+                w = op.matmul(v)
+                a = total((v.conj() * w).sum()).real
+                alphas.append(float(a))
+                for _ in range(2):  # full re-orthogonalization
+                    w = w - basis @ total(basis.conj().T @ w)
+                b = float(total((w.conj() * w).real.sum()).sqrt())
+                T = np.diag(alphas) + np.diag(betas, 1) + np.diag(betas, -1)
+                top = float(np.linalg.eigvalsh(T)[-1])
+                history.append(top)
+                done = len(history) > 3 and abs(history[-1] - history[-4]) <= tol * max(abs(top), 1e-300)
+                if done or b <= 1e-13 * max(abs(top), 1.0) or step == min(n, max_steps) - 1:
+                    return top
+                betas.append(b)
+                v = w / b
+                basis = torch.cat([basis, v], dim=1)
+        return history[-1]  # pragma: no cover - the loop always returns
 
     def transpose_conj(self) -> "ShardedOperator":
         if self.hermitian:
