@@ -26,8 +26,8 @@ from phasorgraph import (
 )
 from phasorgraph import magnetic_matmul
 from phasorgraph.data import GraphBatch, directed_block_model, directed_cycle, iterate_batches, split_link_orientation, split_nodes
-from phasorgraph.nn import (BandMix, DiffusionScattering, DiffusionWavelets, LearnedCharge, MagneticFilter, ModReLU,
-                             MomentReadout, ScaleSelector)
+from phasorgraph.nn import (BandMix, ChebyshevFilter, ComplexToReal, DiffusionScattering, DiffusionWavelets, LearnedCharge,
+                             MagneticFilter, ModReLU, MomentReadout, RenormalizedFilter, ScaleSelector, SpectralMultiplier)
 from phasorgraph._groups import group_count, group_mean, group_sum
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
 
@@ -315,6 +315,28 @@ CASES = [
      r"x dtype must be float32, float64, complex64 or complex128; got torch\.int64 \(convert integer features"),
     ("integer parameter dtype for ScaleSelector", lambda: ScaleSelector(4, 2, dtype=torch.int64),
      r"dtype must be torch\.float32 or torch\.float64 \(or complex64/complex128 for that precision\); got torch\.int64"),
+    # --- layers: found by the harness
+    ("bias flag as text", lambda: ChebyshevFilter(2, 2, order=1, bias="False"), r"bias must be True or False; got 'False'"),
+    ("complex_weights flag as a number", lambda: MagneticFilter(2, 2, order=1, charge=0.1, complex_weights=1),
+     r"complex_weights must be True or False; got 1"),
+    ("lowpass flag as text", lambda: DiffusionScattering(2, 2, lowpass="no"), r"lowpass must be True or False; got 'no'"),
+    ("normalized flag of MomentReadout as text", lambda: MomentReadout(normalized="False"),
+     r"normalized must be True or False; got 'False'"),
+    ("layer dtype given as a list", lambda: RenormalizedFilter(2, 2, dtype=[torch.float32]),
+     r"dtype must be torch\.float32 or torch\.float64 .*; got \[torch\.float32\]"),
+    ("astronomically many channels", lambda: ChebyshevFilter(2 ** 40, 4, order=2),
+     r"the layer's parameters of shape \(3, 1099511627776, 4\) need .* GiB but this machine has"),
+    ("astronomically many knots", lambda: SpectralMultiplier(2, 2, knots=2 ** 40), r"knots = 1099511627776 needs"),
+    ("astronomically many scales", lambda: DiffusionWavelets(2 ** 40),
+     r"scales must be an integer in \[1, 16\] \(the largest diffusion time is 2\*\*scales sparse products\); got 1099511627776"),
+    ("astronomically many moments", lambda: MomentReadout(2 ** 40), r"moments must be an integer in \[1, 16\]"),
+    ("astronomically long low-pass", lambda: BandMix(2, 2, low_pass_steps=2 ** 40),
+     r"low_pass_steps must be an integer in \[1, 65536\]"),
+    ("tensor in place of an operator", lambda: RenormalizedFilter(2, 2)(torch.ones(3, 2), torch.eye(3)),
+     r"op_or_graph must be a SparseOperator or a DirectedGraph .*; got Tensor"),
+    ("head mode given as an array", lambda: ComplexToReal(np.array(["modulus"])), r"mode must be one of"),
+    ("meta tensor as knot positions", lambda: SpectralMultiplier(2, 2, knots=torch.ones(3, device="meta")),
+     r"knots must be an int >= 2, a strictly increasing sequence of positions"),
     ("split fraction too small for one link", lambda: split_link_orientation(_g(), 0.1, 0.4),
      r"val_fraction = 0\.1 of the 3 eligible links rounds to 0 links; raise val_fraction to at least 0\.167"),
 ]

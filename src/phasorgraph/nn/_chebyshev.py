@@ -14,6 +14,7 @@ from typing import Optional, Sequence
 import torch
 from torch import nn
 
+from .._checks import check_flag
 from ._layer import add_bias, check_count, complex_view, factory_kwargs, make_parameters, mix, reset_uniform
 
 
@@ -72,7 +73,7 @@ class ChebyshevBase(nn.Module):
         self.in_channels = check_count("in_channels", in_channels)
         self.out_channels = check_count("out_channels", out_channels)
         self.order = check_count("order", order, minimum=0)
-        self.complex_weights = bool(complex_weights)
+        self.complex_weights = check_flag("complex_weights", complex_weights)
         make_parameters(self, (self.order + 1, self.in_channels, self.out_channels), bias,
                         factory_kwargs(device, dtype), self.complex_weights)
 

@@ -15,7 +15,9 @@ import torch
 from torch import nn
 from torch.autograd.function import once_differentiable
 
-from ..errors import GraphInputError
+from .._checks import check_flag
+from .._limits import physical_memory
+from ..errors import GraphInputError, _value_text
 
 REAL = (torch.float32, torch.float64)
 COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
@@ -27,26 +29,47 @@ GRAPH_LIKE = ("num_nodes", "num_rows", "operator")
 
 
 # ---------------------------------------------------------------------- argument checks
-def check_count(name: str, value, minimum: int = 1, *, optional: bool = False) -> Optional[int]:
-    """An integer >= minimum (bools refused); None passes when ``optional``."""
+def check_count(name: str, value, minimum: int = 1, *, optional: bool = False, maximum: Optional[int] = None,
+                why: str = "") -> Optional[int]:
+    """An integer >= minimum (and <= maximum when given; bools refused); None passes when ``optional``."""
     if optional and value is None:
         return None
-    rule = f"None or an integer >= {minimum}" if optional else f"an integer >= {minimum}"
+    rule = f"an integer >= {minimum}" if maximum is None else f"an integer in [{minimum}, {maximum}]{why}"
+    rule = f"None or {rule}" if optional else rule
     if isinstance(value, bool) or not isinstance(value, numbers.Integral):
         raise GraphInputError(f"{name} must be {rule}; got {value!r}")
-    if int(value) < minimum:
+    if int(value) < minimum or (maximum is not None and int(value) > maximum):
         raise GraphInputError(f"{name} must be {rule}; got {int(value)}")
     return int(value)
+
+
+#: the most dyadic scales J a diffusion layer accepts: 2**J sparse products per forward
+#: (2**16 = 65536 already takes minutes on a large graph; a typo such as 2**40 would never end)
+MAX_SCALES = 16
+#: the longest diffusion time a layer computes step by step (ScaleSelector, BandMix low-pass)
+MAX_STEPS = 2 ** 16
+_SCALES_WHY = " (the largest diffusion time is 2**scales sparse products)"
+_STEPS_WHY = " (one sparse product per step)"
+
+
+def check_scales(name: str, value) -> int:
+    """A number of dyadic scales J in [1, MAX_SCALES]."""
+    return check_count(name, value, maximum=MAX_SCALES, why=_SCALES_WHY)
+
+
+def check_steps(name: str, value) -> int:
+    """A number of diffusion steps in [1, MAX_STEPS]."""
+    return check_count(name, value, maximum=MAX_STEPS, why=_STEPS_WHY)
 
 
 def real_factory_dtype(dtype) -> Optional[torch.dtype]:
     """The real parameter dtype for factory kwargs (a complex dtype selects its precision)."""
     if dtype is None:
         return None
-    if dtype not in REAL_OF:
+    if not isinstance(dtype, torch.dtype) or dtype not in REAL_OF:
         raise GraphInputError(
             f"dtype must be torch.float32 or torch.float64 (or complex64/complex128 for that "
-            f"precision); got {dtype}"
+            f"precision); got {_value_text(dtype)}"
         )
     return REAL_OF[dtype]
 
@@ -133,6 +156,23 @@ def check_graph_like(graph, layer: str, needs: tuple = GRAPH_LIKE):
 
 
 # ---------------------------------------------------------------------- parameters
+def empty_parameter(shape: tuple, factory: dict) -> nn.Parameter:
+    """``nn.Parameter(torch.empty(shape, **factory))``, refused before allocating when it cannot fit.
+
+    (Channel counts such as 2**40 made torch's allocator fail deep inside with its own error.)
+    """
+    shape = tuple(int(s) for s in shape)
+    count = math.prod(shape)  # Python ints: no overflow
+    itemsize = torch.empty((), dtype=factory.get("dtype") or torch.get_default_dtype()).element_size()
+    if count * itemsize > physical_memory():
+        raise GraphInputError(
+            f"the layer's parameters of shape {shape} need {count * itemsize / 2 ** 30:.3g} GiB but this "
+            f"machine has {physical_memory() / 2 ** 30:.3g} GiB of memory; lower the channel counts, order, "
+            f"knots or steps"
+        )
+    return nn.Parameter(torch.empty(shape, **factory))
+
+
 def init_uniform_(tensor: torch.Tensor, bound: float) -> torch.Tensor:
     """Real weights: i.i.d. U(-bound, bound), in place (variance bound^2 / 3)."""
     with torch.no_grad():
@@ -155,9 +195,9 @@ def make_parameters(module: nn.Module, weight_shape: tuple, bias: bool, factory:
     """Register ``weight`` of ``weight_shape`` and ``bias`` (C_out,) or None; a trailing axis of 2
     holds (real, imaginary) pairs when ``complex_pairs``."""
     pair = (2,) if complex_pairs else ()
-    module.weight = nn.Parameter(torch.empty(tuple(weight_shape) + pair, **factory))
-    if bias:
-        module.bias = nn.Parameter(torch.empty((module.out_channels,) + pair, **factory))
+    module.weight = empty_parameter(tuple(weight_shape) + pair, factory)
+    if check_flag("bias", bias):
+        module.bias = empty_parameter((module.out_channels,) + pair, factory)
     else:
         module.register_parameter("bias", None)
 

@@ -12,24 +12,28 @@ from torch import nn
 from .. import operators
 from ..errors import GraphInputError
 from ._diffusion import diffusion_powers, dyadic_bands
-from ._layer import check_count, check_features, check_graph_like, factory_kwargs
+from .._checks import check_flag
+from ._layer import (MAX_STEPS, check_count, check_features, check_graph_like, check_scales, empty_parameter,
+                     factory_kwargs)
 
 __all__ = ["BandMix"]
 
 
 def _check_steps(low_pass_steps) -> tuple:
     if isinstance(low_pass_steps, numbers.Integral) and not isinstance(low_pass_steps, bool):
-        if low_pass_steps < 1:
-            raise GraphInputError(f"low_pass_steps must be an integer >= 1 or a sequence of integers >= 0; "
-                                  f"got {low_pass_steps!r}")
+        if not 1 <= low_pass_steps <= MAX_STEPS:
+            raise GraphInputError(f"low_pass_steps must be an integer in [1, {MAX_STEPS}] or a sequence of "
+                                  f"integers in [0, {MAX_STEPS}]; got {low_pass_steps!r}")
         return tuple(range(1, int(low_pass_steps) + 1))
     try:
         steps = tuple(low_pass_steps)
     except TypeError:
         raise GraphInputError(f"low_pass_steps must be an integer >= 1 or a sequence of integers >= 0; "
                               f"got {low_pass_steps!r}") from None
-    if not steps or any(isinstance(k, bool) or not isinstance(k, numbers.Integral) or k < 0 for k in steps):
-        raise GraphInputError(f"low_pass_steps must be a non-empty sequence of integers >= 0; got {low_pass_steps!r}")
+    if isinstance(low_pass_steps, str) or not steps or any(
+            isinstance(k, bool) or not isinstance(k, numbers.Integral) or not 0 <= k <= MAX_STEPS for k in steps):
+        raise GraphInputError(f"low_pass_steps must be a non-empty sequence of integers in [0, {MAX_STEPS}] "
+                              f"(one sparse product per step); got {low_pass_steps!r}")
     return tuple(int(k) for k in steps)
 
 
@@ -94,15 +98,15 @@ class BandMix(nn.Module):
         self.in_channels = check_count("in_channels", in_channels)
         self.out_channels = check_count("out_channels", out_channels)
         self.low_pass_steps = _check_steps(low_pass_steps)
-        self.scales = check_count("scales", scales)
+        self.scales = check_scales("scales", scales)
         self.num_channels = len(self.low_pass_steps) + self.scales + 1
         factory = factory_kwargs(device, dtype)
-        self.weight = nn.Parameter(torch.empty(self.num_channels, self.out_channels, self.in_channels, **factory))
-        if bias:
-            self.bias = nn.Parameter(torch.empty(self.num_channels, self.out_channels, **factory))
+        self.weight = empty_parameter((self.num_channels, self.out_channels, self.in_channels), factory)
+        if check_flag("bias", bias):
+            self.bias = empty_parameter((self.num_channels, self.out_channels), factory)
         else:
             self.register_parameter("bias", None)
-        self.attention = nn.Parameter(torch.empty(2, self.out_channels, **factory))
+        self.attention = empty_parameter((2, self.out_channels), factory)
         self.last_attention = None
         self.reset_parameters()
 

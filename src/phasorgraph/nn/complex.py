@@ -22,7 +22,7 @@ import torch
 from torch import nn
 
 from ..errors import GraphInputError
-from ._layer import check_count, real_factory_dtype
+from ._layer import check_count, empty_parameter, real_factory_dtype
 
 __all__ = [
     "ModReLU",
@@ -87,7 +87,7 @@ class ModReLU(nn.Module):
     def __init__(self, num_features: int, *, device=None, dtype=None):
         super().__init__()
         self.num_features = check_count("num_features", num_features)
-        self.bias = nn.Parameter(torch.empty(self.num_features, device=device, dtype=real_factory_dtype(dtype)))
+        self.bias = empty_parameter((self.num_features,), {"device": device, "dtype": real_factory_dtype(dtype)})
         self.reset_parameters()
 
     def reset_parameters(self) -> None:
@@ -254,7 +254,7 @@ class ComplexToReal(nn.Module):
 
     def __init__(self, mode: str = "cartesian"):
         super().__init__()
-        if mode not in _MODES:
+        if not isinstance(mode, str) or mode not in _MODES:
             raise GraphInputError(f"mode must be one of {_MODES}; got {mode!r}")
         self.mode = mode
 

@@ -29,6 +29,7 @@ from scipy.sparse.csgraph import connected_components
 import torch
 from torch import nn
 
+from .._limits import physical_memory
 from ..errors import GraphInputError
 from ..operators import renormalized_adjacency
 from ..sparse import SparseOperator
@@ -218,7 +219,12 @@ class RenormalizedFilter(nn.Module):
     def _operator(self, op_or_graph):
         precision, device = self.weight.dtype, self.weight.device
         if not hasattr(op_or_graph, "operator"):   # an operator, not a graph-like object
-            if getattr(op_or_graph, "is_complex", False):
+            if not all(hasattr(op_or_graph, a) for a in ("matmul", "hermitian", "kind", "num_rows")):
+                raise GraphInputError(
+                    f"op_or_graph must be a SparseOperator or a DirectedGraph (or another graph-like object); got "
+                    f"{type(op_or_graph).__name__}"
+                )
+            if op_or_graph.is_complex:
                 raise GraphInputError(
                     f"op must be real for RenormalizedFilter (the renormalized adjacency); got "
                     f"{op_or_graph.dtype} (kind {op_or_graph.kind!r}); use ChebyshevFilter or "
@@ -379,7 +385,7 @@ class SpectralMultiplier(nn.Module):
         self.max_nodes = check_count("max_nodes", max_nodes)
         try:
             low, high = (float(v) for v in interval)
-        except (TypeError, ValueError):
+        except (TypeError, ValueError, RuntimeError, NotImplementedError):
             raise GraphInputError(f"interval must be a pair (low, high) of numbers; got {interval!r}") from None
         if not (math.isfinite(low) and math.isfinite(high) and low < high):
             raise GraphInputError(f"interval must be a finite pair with low < high; got {interval!r}")
@@ -403,11 +409,14 @@ class SpectralMultiplier(nn.Module):
         else:
             if isinstance(knots, numbers.Integral) and not isinstance(knots, bool):
                 count = check_count("knots", knots, minimum=2)
+                if count * self.in_channels * self.out_channels * 8 > physical_memory():
+                    raise GraphInputError(f"knots = {count} needs ({count}, {self.in_channels}, {self.out_channels}) "
+                                          f"multiplier values, more than this machine's memory holds; use fewer knots")
                 positions = tuple(low + (high - low) * j / (count - 1) for j in range(count))
             else:
                 try:
                     positions = tuple(float(v) for v in knots)
-                except (TypeError, ValueError):
+                except (TypeError, ValueError, RuntimeError, NotImplementedError):
                     raise GraphInputError(
                         f"knots must be an int >= 2, a strictly increasing sequence of positions, or "
                         f"{PER_EIGENVALUE!r}; got {knots!r}"

@@ -7,6 +7,7 @@ from typing import Optional
 import torch
 from torch import nn
 
+from .._checks import check_flag
 from ..errors import GraphInputError
 from .._groups import check_groups, group_max, group_mean
 from ._layer import check_count
@@ -16,6 +17,9 @@ __all__ = ["MomentReadout"]
 #: a feature whose standard deviation is below this many machine epsilons of its largest
 #: magnitude in the graph counts as constant (common practice, no source)
 _CONSTANT_ULPS = 8.0
+#: the most moments a readout computes (a bound so that a typo such as 2**40 is refused, not run;
+#: moments of order > 16 of float data are dominated by rounding, common practice, no source)
+_MAX_MOMENTS = 16
 
 
 class MomentReadout(nn.Module):
@@ -47,7 +51,7 @@ class MomentReadout(nn.Module):
     finite; a NaN or inf feature makes its own graph's row NaN and no other row.
 
     Args:
-        moments: the number of moments K >= 1 (default 4).
+        moments: the number of moments K, 1 <= K <= 16 (default 4).
         normalized: standardize the moments of order >= 3 (default True).
 
     Shape:
@@ -68,8 +72,9 @@ class MomentReadout(nn.Module):
 
     def __init__(self, moments: int = 4, normalized: bool = True):
         super().__init__()
-        self.moments = check_count("moments", moments)
-        self.normalized = bool(normalized)
+        self.moments = check_count("moments", moments, maximum=_MAX_MOMENTS,
+                                   why=" (higher standardized moments carry no usable information)")
+        self.normalized = check_flag("normalized", normalized)
 
     def forward(self, x: torch.Tensor, graph_index: Optional[torch.Tensor] = None,
                 num_graphs: Optional[int] = None) -> torch.Tensor:

@@ -17,7 +17,8 @@ from torch import nn
 from ..errors import GraphInputError
 from ..sparse import SparseOperator
 from ._diffusion import check_diffusion_operator, diffusion_powers, dyadic_bands
-from ._layer import check_count, check_features, factory_kwargs
+from .._checks import check_flag
+from ._layer import check_count, check_features, check_scales, empty_parameter, factory_kwargs
 
 __all__ = ["DiffusionScattering"]
 
@@ -101,12 +102,12 @@ class DiffusionScattering(nn.Module):
                  bias: bool = True, lowpass: bool = True, *, device=None, dtype=None):
         super().__init__()
         self.in_channels = check_count("in_channels", in_channels)
-        self.scales = check_count("scales", scales)
+        self.scales = check_scales("scales", scales)
         if isinstance(order, bool) or not isinstance(order, numbers.Integral) or order not in (1, 2):
             raise GraphInputError(f"order must be 1 or 2; got {order!r}")
         self.order = int(order)
         self.out_channels = check_count("out_channels", out_channels, optional=True)
-        self.lowpass = bool(lowpass)
+        self.lowpass = check_flag("lowpass", lowpass)
         J = self.scales
         self.paths = [()] + [(j,) for j in range(J + 1)]
         if self.order == 2:
@@ -114,9 +115,9 @@ class DiffusionScattering(nn.Module):
         self.num_coefficients = len(self.paths)
         factory = factory_kwargs(device, dtype)
         if self.out_channels is not None:
-            self.weight = nn.Parameter(torch.empty(self.out_channels, self.num_coefficients * self.in_channels, **factory))
-            if bias:
-                self.bias = nn.Parameter(torch.empty(self.out_channels, **factory))
+            self.weight = empty_parameter((self.out_channels, self.num_coefficients * self.in_channels), factory)
+            if check_flag("bias", bias):
+                self.bias = empty_parameter((self.out_channels,), factory)
             else:
                 self.register_parameter("bias", None)
         else:

@@ -15,7 +15,7 @@ from torch import nn
 
 from ..sparse import SparseOperator
 from ._diffusion import check_diffusion_operator, diffusion_powers, dyadic_bands
-from ._layer import check_count, check_features, factory_kwargs
+from ._layer import check_count, check_features, check_scales, check_steps, empty_parameter, factory_kwargs
 
 __all__ = ["DiffusionWavelets", "ScaleSelector"]
 
@@ -61,7 +61,7 @@ class DiffusionWavelets(nn.Module):
 
     def __init__(self, scales: int):
         super().__init__()
-        self.scales = check_count("scales", scales)
+        self.scales = check_scales("scales", scales)
         self.steps = tuple(2 ** j for j in range(self.scales + 1))
 
     @property
@@ -126,10 +126,11 @@ class ScaleSelector(nn.Module):
 
     def __init__(self, max_steps: int, scales: int, *, device=None, dtype=None):
         super().__init__()
-        self.max_steps = check_count("max_steps", max_steps)
-        self.scales = check_count("scales", scales)
+        self.max_steps = check_steps("max_steps", max_steps)
+        self.scales = check_count("scales", scales, maximum=self.max_steps + 1,
+                                  why=" (at most one boundary per diffusion step)")
         factory = factory_kwargs(device, dtype)
-        self.logits = nn.Parameter(torch.empty(self.scales, self.max_steps + 1, **factory))
+        self.logits = empty_parameter((self.scales, self.max_steps + 1), factory)
         self.reset_parameters()
 
     def initial_steps(self) -> list:
