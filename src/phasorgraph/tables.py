@@ -304,8 +304,7 @@ def _as_node_names(role: str, names: Any, num_nodes: Optional[int]) -> np.ndarra
         raise GraphInputError(f"{role} must not hold missing ids; position {_first_position(miss)} is {_show(arr[miss][0])}")
     codes, uniq = _factorize(arr, role)
     if uniq.shape[0] != arr.shape[0]:
-        first = np.full(uniq.shape[0], -1, dtype=np.int64)
-        first[codes[::-1]] = np.arange(codes.size)[::-1]
+        first = np.unique(codes, return_index=True)[1]  # first position of each distinct id
         k = int(np.flatnonzero(first[codes] != np.arange(codes.size))[0])
         raise GraphInputError(
             f"{role} must be distinct; the id {_show(arr[k])} appears at positions {int(first[codes[k]])} and {k}"
@@ -537,7 +536,7 @@ def _node_rows(graph, table, id, roles, skip_unknown):
 
     if not isinstance(graph, DirectedGraph):
         raise GraphInputError(f"graph must be a DirectedGraph; got {type(graph).__name__}")
-    if isinstance(skip_unknown, bool) is False:
+    if not isinstance(skip_unknown, bool):
         raise GraphInputError(f"skip_unknown must be True or False; got {skip_unknown!r}")
     cols, rows = _read_columns(table, {"id": id, **roles})
     ids = _check_ids("id", id, cols[id])
