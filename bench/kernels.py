@@ -15,7 +15,7 @@ variant alike), medians over repeats:
 It also reports the log-log slope of time against E (from 1e5 edges up), an effective bandwidth
 (compulsory bytes: the operator's values and indices, x read once, y written once; and the
 gathered bytes nnz * F * 8 of the row gathers) beside a copy bandwidth measured in the same run,
-and the cost of the charge gradient: operators.magnetic_matmul forward+backward (x and q
+and the cost of the charge gradient: learned_charge.magnetic_matmul forward+backward (x and q
 gradients) against a plain hermitian_matmul forward+backward on the same graph.
 
 Usage: ``python bench/kernels.py [--quick] [--max-edges 1e7] [--repeats 3]``; writes
@@ -37,7 +37,7 @@ import torch
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _common import copy_bandwidth, print_table, write_results  # noqa: E402
 
-from phasorgraph import operators  # noqa: E402
+from phasorgraph import learned_charge, operators  # noqa: E402
 from phasorgraph.graph import DirectedGraph  # noqa: E402
 from phasorgraph.sparse import hermitian_matmul  # noqa: E402
 
@@ -196,15 +196,15 @@ def bench_charge(graph: DirectedGraph, repeats: int) -> dict:
     xhr = x.real.contiguous().requires_grad_()
     cases = {
         "plain": (lambda: hermitian_matmul(op, xh), [xh]),
-        "charge": (lambda: operators.magnetic_matmul(graph, q, xm), [xm, q]),
+        "charge": (lambda: learned_charge.magnetic_matmul(graph, q, xm), [xm, q]),
         "plain_real_x": (lambda: hermitian_matmul(op, xhr), [xhr]),
-        "charge_real_x": (lambda: operators.magnetic_matmul(graph, q, xr), [xr, q]),
+        "charge_real_x": (lambda: learned_charge.magnetic_matmul(graph, q, xr), [xr, q]),
     }
     big = graph.num_edges >= 1_000_000
     res = fwd_bwd_times(cases, grad, repeats=min(repeats, 2) if big else repeats, warmup=0 if big else 1,
                         max_seconds=60.0)
     with torch.no_grad():
-        err = float((operators.magnetic_matmul(graph, q, x) - hermitian_matmul(op, x)).abs().max())
+        err = float((learned_charge.magnetic_matmul(graph, q, x) - hermitian_matmul(op, x)).abs().max())
     out = {"E": graph.num_edges, "N": n, "nnz": op.nnz, "max_abs_diff": err}
     for name, r in res.items():
         out[f"{name}_fwd_s"] = r["forward"]

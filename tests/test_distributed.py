@@ -23,7 +23,7 @@ from torch import nn
 from phasorgraph import DirectedGraph
 from phasorgraph.data import GraphBatch, directed_block_model, random_out_graph
 from phasorgraph.nn import LearnedCharge, MagneticFilter
-from phasorgraph.operators import magnetic_matmul
+from phasorgraph.learned_charge import magnetic_matmul
 
 WORLD = 2
 STEPS = 3

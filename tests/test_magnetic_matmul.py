@@ -1,4 +1,4 @@
-"""Tests of operators.magnetic_matmul, the magnetic Laplacian product differentiable in the charge.
+"""Tests of learned_charge.magnetic_matmul, the magnetic Laplacian product differentiable in the charge.
 
 References used (named again beside each check):
 * a dense numpy construction of the normalized magnetic Laplacian straight from the edge list,
@@ -16,11 +16,13 @@ import pytest
 import torch
 from torch.autograd import gradcheck
 
+import dense
 from phasorgraph.data.generators import directed_block_model
 from phasorgraph.errors import GraphInputError
 from phasorgraph.graph import DirectedGraph
-from phasorgraph import operators
-from phasorgraph.operators import magnetic_laplacian, magnetic_matmul
+from phasorgraph import learned_charge, operators
+from phasorgraph.learned_charge import magnetic_matmul
+from phasorgraph.operators import magnetic_laplacian
 
 
 PHASES = ["difference", "sign"]
@@ -35,17 +37,8 @@ def _small_graph() -> DirectedGraph:
 
 
 def _dense_reference(graph: DirectedGraph, q: float, phase: str) -> np.ndarray:
-    # reference: the published formula evaluated densely in numpy from the raw edges
-    n = graph.num_nodes
-    A = np.zeros((n, n))
-    np.add.at(A, (graph.source.numpy(), graph.target.numpy()), graph.weight.numpy())
-    As = (A + A.T) / 2
-    diff = A - A.T
-    theta = 2 * np.pi * q * (diff if phase == "difference" else np.sign(diff))
-    H = As * np.exp(1j * theta)
-    d = As.sum(1)
-    s = np.where(d > 0, 1 / np.sqrt(np.where(d > 0, d, 1)), 0.0)
-    return np.eye(n) - s[:, None] * H * s[None, :]
+    # reference: the published formula evaluated densely in numpy from the raw edges (tests/dense.py)
+    return dense.normalized_magnetic_laplacian(dense.dense_adjacency(graph), q, phase)
 
 
 def _features(shape, complex_values: bool, seed: int = 0) -> torch.Tensor:
@@ -168,12 +161,12 @@ def test_magnetic_product_reuses_one_value_array_and_matches_repeated_matmul():
     x = torch.randn(5, 3, dtype=torch.float64)
     q1 = torch.tensor(0.13, dtype=torch.float64, requires_grad=True)
     q2 = torch.tensor(0.13, dtype=torch.float64, requires_grad=True)
-    apply = operators.magnetic_product(g, q1)
+    apply = learned_charge.magnetic_product(g, q1)
     y1 = apply(apply(x))
-    y2 = operators.magnetic_matmul(g, q2, operators.magnetic_matmul(g, q2, x))
+    y2 = learned_charge.magnetic_matmul(g, q2, learned_charge.magnetic_matmul(g, q2, x))
     torch.testing.assert_close(y1, y2)
     y1.abs().sum().backward()
     y2.abs().sum().backward()
     torch.testing.assert_close(q1.grad, q2.grad)
-    assert torch.autograd.gradcheck(lambda q, t: operators.magnetic_product(g, q)(operators.magnetic_product(g, q)(t)),
+    assert torch.autograd.gradcheck(lambda q, t: learned_charge.magnetic_product(g, q)(learned_charge.magnetic_product(g, q)(t)),
                                     (q1.detach().requires_grad_(), x.clone().requires_grad_()))

@@ -41,6 +41,7 @@ from phasorgraph import (
     random_walk_laplacian,
     renormalized_adjacency,
 )
+from dense import DenseGraph, dense_adjacency
 from strategies import charges, directed_graphs, graphs_and_permutations
 
 F64, C128 = torch.float64, torch.complex128
@@ -49,58 +50,9 @@ TOL = dict(rtol=1e-10, atol=1e-10)
 
 
 # ---------------------------------------------------------------------- dense reference
-def _dense_A(g: DirectedGraph) -> np.ndarray:
-    A = np.zeros((g.num_nodes, g.num_nodes))
-    np.add.at(A, (g.source.numpy(), g.target.numpy()), g.weight.numpy())
-    return A
-
-
-class _ref:
-    """Dense numpy versions of every DESIGN.md formula (reference for the sparse code)."""
-
-    def __init__(self, g: DirectedGraph):
-        self.n = g.num_nodes
-        self.A = _dense_A(g)
-        self.As = (self.A + self.A.T) / 2
-        self.d = self.As.sum(axis=1)
-        pos = self.d > 0
-        self.dis = np.where(pos, 1 / np.sqrt(np.where(pos, self.d, 1)), 0.0)  # D^-1/2, 0 if d = 0
-        self.dinv = np.where(pos, 1 / np.where(pos, self.d, 1), 0.0)
-        self.I = np.eye(self.n)
-
-    def H(self, q, phase="difference"):
-        diff = self.A - self.A.T
-        theta = 2 * np.pi * q * (diff if phase == "difference" else np.sign(diff))
-        return self.As * np.exp(1j * theta)
-
-    def mag_norm(self, q, phase="difference"):
-        S = np.diag(self.dis)
-        return self.I - S @ self.H(q, phase) @ S
-
-    def mag(self, q, phase="difference"):
-        return np.diag(self.d) - self.H(q, phase)
-
-    def norm(self):
-        S = np.diag(self.dis)
-        return self.I - S @ self.As @ S
-
-    def comb(self):
-        return np.diag(self.d) - self.As
-
-    def rw(self):
-        return self.I - np.diag(self.dinv) @ self.As
-
-    def renorm(self):
-        S = np.diag(1 / np.sqrt(self.d + 1))
-        return S @ (self.As + self.I) @ S
-
-    def T(self):
-        S = np.diag(self.dis)
-        return (self.I + S @ self.As @ S) / 2
-
-    def P(self, lazy=True):
-        W = self.As @ np.diag(self.dinv)
-        return (self.I + W) / 2 if lazy else W
+# every DESIGN.md formula written densely once, in tests/dense.py
+_dense_A = dense_adjacency
+_ref = DenseGraph
 
 
 def _dense(op: SparseOperator) -> np.ndarray:
@@ -550,9 +502,10 @@ def test_complex64_phases_stay_accurate_for_large_weights():
 def test_assemble_fast_path_equals_general_path(g):
     # operators._assemble takes a merge-only path for canonical COO input; the general path
     # (torch.unique) must give the same matrix, also for shuffled input with repeats
-    from phasorgraph.operators import _assemble, _assemble_unsorted, _parts
+    from phasorgraph.operators import _assemble, _assemble_unsorted
 
-    rows, cols, sym, _, degree = _parts(g)
+    st = g.structure
+    rows, cols, sym = st.rows, st.cols, st.symmetric
     n = g.num_nodes
     diag = torch.arange(n, dtype=F64) + 0.5
     fast = _assemble(n, rows, cols, sym, F64, diag=diag).to_dense()

@@ -3,23 +3,11 @@
 from .errors import GraphInputError
 from .graph import DirectedGraph
 from .sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
-from . import data, nn, operators, spectral, tables
+from . import data, learned_charge, nn, operators, spectral, tables
+from .learned_charge import magnetic_matmul, magnetic_product
+from .operators import *  # noqa: F401,F403  (every construction; listed once, in operators.__all__)
 from .scan import ChargeScan, scan_charges
 from .responses import filter_response, plot_filter_response
-from .operators import (
-    combinatorial_laplacian,
-    diffusion,
-    magnetic_adjacency,
-    magnetic_laplacian,
-    magnetic_matmul,
-    magnetic_product,
-    normalized_laplacian,
-    pagerank_laplacian,
-    proximity_operators,
-    random_walk,
-    random_walk_laplacian,
-    renormalized_adjacency,
-)
 
 __version__ = "0.1.0"
 
@@ -31,20 +19,11 @@ __all__ = [
     "general_matmul",
     "values_matmul",
     "operators",
+    "learned_charge",
     "spectral",
     "nn",
     "data",
     "tables",
-    "combinatorial_laplacian",
-    "normalized_laplacian",
-    "random_walk_laplacian",
-    "renormalized_adjacency",
-    "magnetic_adjacency",
-    "magnetic_laplacian",
-    "diffusion",
-    "random_walk",
-    "pagerank_laplacian",
-    "proximity_operators",
     "magnetic_matmul",
     "magnetic_product",
     "scan_charges",
@@ -52,4 +31,4 @@ __all__ = [
     "filter_response",
     "plot_filter_response",
     "__version__",
-]
+] + list(operators.__all__)

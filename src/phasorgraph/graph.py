@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numbers
-from typing import Any, Callable
+from typing import Any, Callable, NamedTuple
 
 import numpy as np
 import scipy.sparse as sp
@@ -12,7 +12,7 @@ import torch
 from ._limits import check_node_count
 from .errors import GraphInputError, _value_text
 
-__all__ = ["DirectedGraph"]
+__all__ = ["DirectedGraph", "GraphStructure"]
 
 
 _ID_LIMIT = 2 ** 63  # node ids are stored as int64
@@ -162,12 +162,113 @@ def _same_names(a, b) -> bool:
     return a.shape == b.shape and bool(np.all(a == b))
 
 
-def _hashable(value: Any) -> bool:
-    try:
-        hash(value)
-    except TypeError:
-        return False
-    return True
+def inverse_power(d: Any, power: float = 1.0):
+    """``d ** -power`` where ``d > 0`` and 0 where ``d == 0``: the one zero-degree rule.
+
+    Every :math:`D^{-1/2}` or :math:`D^{-1}` of the package goes through here, so an isolated
+    node never gives NaN or inf. Takes and returns a float64 tensor or numpy array (numpy inside:
+    single-threaded compiled loops, no per-call thread start-up).
+    """
+    is_tensor = isinstance(d, torch.Tensor)
+    arr = d.numpy() if is_tensor else np.asarray(d, dtype=np.float64)
+    out = np.zeros_like(arr)
+    pos = arr > 0
+    if power == 0.5:
+        np.divide(1.0, np.sqrt(arr, where=pos, out=np.zeros_like(arr)), out=out, where=pos)
+    elif power == 1.0:
+        np.divide(1.0, arr, out=out, where=pos)
+    else:
+        np.power(arr, -power, out=out, where=pos)
+    return torch.from_numpy(out) if is_tensor else out
+
+
+class GraphStructure(NamedTuple):
+    r"""What every operator is built from: computed once per graph, then only read.
+
+    All arrays live on the union pattern of A and :math:`A^T` (the non-zeros of
+    :math:`A + A^T`), sorted by row, then column, so it is also a CSR pattern. Float arrays are
+    float64, index arrays int64, all on the CPU.
+
+    Attributes:
+        crow: (N + 1,) CSR row pointer of the pattern.
+        rows, cols: (nnz,) row and column of each non-zero.
+        symmetric: (nnz,) :math:`A_s = (A + A^T) / 2`.
+        antisymmetric: (nnz,) :math:`A - A^T` (exactly 0 on reciprocal edges of equal weight).
+        degree: (N,) :math:`d = A_s \mathbf{1}` (self-loops counted once).
+        inv_sqrt_degree, inv_degree: (N,) :math:`d^{-1/2}` and :math:`d^{-1}`, 0 where d = 0.
+        normalized: (nnz,) :math:`(A_s)_{uv} / \sqrt{d_u d_v}`, the values of
+            :math:`D^{-1/2} A_s D^{-1/2}`.
+        min_weight: the smallest edge weight (0.0 for a graph without edges).
+    """
+
+    crow: torch.Tensor
+    rows: torch.Tensor
+    cols: torch.Tensor
+    symmetric: torch.Tensor
+    antisymmetric: torch.Tensor
+    degree: torch.Tensor
+    inv_sqrt_degree: torch.Tensor
+    inv_degree: torch.Tensor
+    normalized: torch.Tensor
+    min_weight: float
+
+
+def _structure(source: torch.Tensor, target: torch.Tensor, weight: torch.Tensor, n: int) -> GraphStructure:
+    """Union pattern of A and A^T with As and A - A^T on it, degrees and their inverse roots.
+
+    Built without a sort: the canonical edges already form the CSR matrix of A, scipy transposes
+    it by counting (O(nnz + N)) and one canonical merge, ``A + 1j A^T``, gives the union pattern
+    with A's value in the real part and A^T's in the imaginary part, exactly (no arithmetic
+    mixes the two, so reciprocal equal weights give an exact 0 in A - A^T).
+    """
+    if source.numel() == 0:
+        empty_i = torch.zeros(0, dtype=torch.int64)
+        empty_f = torch.zeros(0, dtype=torch.float64)
+        zeros = torch.zeros(n, dtype=torch.float64)
+        return GraphStructure(torch.zeros(n + 1, dtype=torch.int64), empty_i, empty_i, empty_f, empty_f, zeros,
+                              zeros, zeros, empty_f, 0.0)
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(source.numpy(), minlength=n), out=indptr[1:])
+    A = sp.csr_matrix((weight.numpy(), target.numpy(), indptr), shape=(n, n))  # canonical: sorted, unique
+    AT = A.T.tocsr()
+    AT.data = AT.data * 1j  # complex data in place of the real (no copy of the index arrays)
+    A.data = A.data.astype(np.complex128)
+    M = A + AT  # canonical merge of two canonical matrices
+    del A, AT
+    a, b = M.data.real, M.data.imag
+    counts = np.diff(M.indptr)
+    rows = np.repeat(np.arange(n, dtype=np.int64), counts)
+    cols = M.indices.astype(np.int64)
+    sym = a + b
+    sym *= 0.5
+    degree = np.bincount(rows, weights=sym, minlength=n)
+    s = inverse_power(degree, 0.5)
+    normalized = s[rows]  # As[u, v] / sqrt(d_u d_v), in numpy (one pass each)
+    normalized *= s[cols]
+    normalized *= sym
+    return GraphStructure(torch.from_numpy(M.indptr.astype(np.int64)), torch.from_numpy(rows), torch.from_numpy(cols),
+                          torch.from_numpy(sym), torch.from_numpy(a - b), torch.from_numpy(degree),
+                          torch.from_numpy(s), torch.from_numpy(inverse_power(degree, 1.0)),
+                          torch.from_numpy(normalized), float(weight.numpy().min()))
+
+
+def _moved(graph: "DirectedGraph", inner: Callable[..., Any], device: str, options: tuple) -> Any:
+    """``inner(graph, **options)`` (itself kept with the graph) moved to ``device``."""
+    op = graph.cached(inner, **dict(options))
+    return op if str(op.device) == device else op.to(device=device)
+
+
+def _options_key(options: dict, where: str) -> tuple:
+    """The options as a hashable, order-free key; an unhashable value is refused by name."""
+    for name, value in options.items():
+        try:
+            hash(value)
+        except TypeError:
+            raise GraphInputError(
+                f"option {name!r} of {where} must be hashable (a number, string, dtype or tuple); "
+                f"got {type(value).__name__}"
+            ) from None
+    return tuple(sorted(options.items()))
 
 
 def _torch_matrix_to_scipy(matrix: torch.Tensor):
@@ -235,7 +336,7 @@ class DirectedGraph:
         (3, 2, [1.0, 5.0])
     """
 
-    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache", "_node_names", "_hash", "__weakref__")
+    __slots__ = ("_source", "_target", "_weight", "_num_nodes", "_cache", "_node_names", "_hash", "_structure", "__weakref__")
 
     def __init__(self, source: Any, target: Any, weight: Any = None, num_nodes: int | None = None, *,
                  node_names: Any = None):
@@ -272,6 +373,7 @@ class DirectedGraph:
         self._source, self._target, self._weight = self._canonical(src, dst, w, num_nodes)
         self._cache: dict = {}
         self._hash: int | None = None
+        self._structure: GraphStructure | None = None
 
     @staticmethod
     def _canonical(src, dst, w, n):
@@ -394,6 +496,7 @@ class DirectedGraph:
             self._node_names.flags.writeable = False
         self._cache = {}
         self._hash = None
+        self._structure = None
 
     # ------------------------------------------------------------------ the graph-like protocol
     # What layers ask of the graph they are given: ``num_nodes``, ``num_rows``, ``operator`` and
@@ -406,6 +509,40 @@ class DirectedGraph:
         (A shard of a distributed graph answers with the rows it owns.)
         """
         return self._num_nodes
+
+    @property
+    def structure(self) -> GraphStructure:
+        """The frozen :class:`GraphStructure` every operator is built from (computed on first use).
+
+        Example:
+            >>> g = DirectedGraph.from_edges([[0], [1]])
+            >>> g.structure.symmetric.tolist(), g.structure.degree.tolist()
+            ([0.5, 0.5], [0.5, 0.5])
+        """
+        if self._structure is None:
+            self._structure = _structure(self._source, self._target, self._weight, self._num_nodes)
+        return self._structure
+
+    def cached(self, builder: Callable[..., Any], **options: Any) -> Any:
+        """``builder(self, **options)``, computed once per (builder, options) and kept with the graph.
+
+        The one cache of things derived from a graph (operators through :meth:`operator`, the
+        learned-charge pattern, ...): it goes when the graph goes, and :meth:`clear_cache` empties
+        it. Pass a module-level function as ``builder`` (a new lambda each call never hits).
+
+        Example:
+            >>> g = DirectedGraph.from_edges([[0, 1], [1, 2]])
+            >>> g.cached(lambda graph, k: graph.num_edges * k, k=3)
+            6
+        """
+        if not callable(builder):
+            raise GraphInputError(f"builder must be a function graph -> value; got {type(builder).__name__}")
+        key = (builder, _options_key(options, "graph.cached"))
+        hit = self._cache.get(key)
+        if hit is None:
+            hit = builder(self, **options)
+            self._cache[key] = hit
+        return hit
 
     def operator(self, builder: Callable[..., Any], *, device: Any = None, **options: Any) -> Any:
         """``builder(self, **options)``, moved to ``device``; built once and kept with the graph.
@@ -433,27 +570,15 @@ class DirectedGraph:
         """
         if not callable(builder):
             raise GraphInputError(f"builder must be a function graph -> operator; got {type(builder).__name__}")
-        where = None if device is None else str(torch.device(device))
-        try:
-            key = ("operator", builder, tuple(sorted(options.items())), where)
-            hit = self._cache.get(key)
-        except TypeError:
-            bad = next(k for k, v in options.items() if not _hashable(v))
-            raise GraphInputError(
-                f"option {bad!r} of graph.operator must be hashable (a number, string, dtype or tuple); "
-                f"got {type(options[bad]).__name__}"
-            ) from None
-        if hit is None:
-            hit = builder(self, **options)
-            if where is not None and str(hit.device) != where:
-                hit = hit.to(device=where)
-            self._cache[key] = hit
-        return hit
+        key = _options_key(options, "graph.operator")
+        if device is None:
+            return self.cached(builder, **options)
+        return self.cached(_moved, inner=builder, device=str(torch.device(device)), options=key)
 
     def magnetic_product(self, charge: torch.Tensor, *, phase: str = "difference") -> Callable[[torch.Tensor], torch.Tensor]:
         r"""The map :math:`x \mapsto L_{norm}(q)\, x` at a tensor charge, differentiable in the charge.
 
-        The same as :func:`phasorgraph.operators.magnetic_product` (see there); this is the
+        The same as :func:`phasorgraph.learned_charge.magnetic_product` (see there); this is the
         form layers call, so that a graph-like object can supply its own.
 
         Example:
@@ -463,12 +588,14 @@ class DirectedGraph:
             >>> apply(torch.ones(3, 1)).dtype
             torch.complex64
         """
-        from .operators import magnetic_product  # operators builds on this module
+        from .learned_charge import magnetic_product  # that module builds on this one
 
         return magnetic_product(self, charge, phase=phase)
 
     def clear_cache(self) -> None:
-        """Drop every operator and derived array kept with this graph (rebuilt on next use).
+        """Drop every operator and derived value kept with this graph (rebuilt on next use).
+
+        The :attr:`structure` stays: it is part of the graph.
 
         Example:
             >>> g = DirectedGraph.from_edges([[0], [1]])

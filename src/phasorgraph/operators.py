@@ -4,18 +4,21 @@ Conventions (A[u, v] = w for an edge u -> v):
 
 * symmetrized adjacency :math:`A_s = (A + A^T) / 2`, degrees :math:`d = A_s \mathbf{1}`;
 * every :math:`D^{-1/2}` or :math:`D^{-1}` of a zero degree is taken as 0, so isolated nodes
-  never produce NaN or inf;
+  never produce NaN or inf (one rule: :func:`phasorgraph.graph.inverse_power`);
 * the magnetic phase :math:`\Theta = 2\pi q (A - A^T)` (``phase="difference"``),
   :math:`2\pi q\, \mathrm{sign}(A - A^T)` (``phase="sign"``) or
   :math:`2\pi q\, (A - A^T) / (A + A^T)` entrywise on the non-zeros of :math:`A + A^T`
   (``phase="relative"``, the net-flow fraction: free of the weights' units).
 
-Every function validates its arguments once, then works vectorized over the non-zeros (no
-Python loop over edges), computes in float64 and returns a CSR :class:`SparseOperator` of the
-requested dtype (one exception: the complex64 normalized magnetic Laplacian takes cos / sin
-in float32 after reducing the angle in float64, an error at complex64 precision). Memory is
-O(N + nnz) except :func:`proximity_operators`, whose second-order matrices have the
-non-zeros of :math:`A A^T`.
+Every function validates its arguments once, then reads the graph's frozen
+:attr:`~phasorgraph.DirectedGraph.structure` (pattern, :math:`A_s`, :math:`A - A^T`, degrees and
+their inverse roots, :math:`D^{-1/2} A_s D^{-1/2}`, all computed once per graph), works
+vectorized over the non-zeros (no Python loop over edges), computes in float64 and returns a
+CSR :class:`SparseOperator` of the requested dtype (one exception: complex64 magnetic values
+take cos / sin in float32 after forming and reducing the angle in float64,
+:func:`magnetic_phasors`, an error at complex64 precision). Memory is O(N + nnz) except
+:func:`proximity_operators`, whose second-order matrices have the non-zeros of :math:`A A^T`.
+The learned-charge product lives in :mod:`phasorgraph.learned_charge`.
 """
 
 from __future__ import annotations
@@ -32,8 +35,8 @@ import torch
 from ._limits import check_node_count
 from ._checks import check_choice, check_flag
 from .errors import GraphInputError, PhaseWrapWarning, _value_text
-from .graph import DirectedGraph
-from .sparse import PatternOperator, SparseOperator, csr_matrix
+from .graph import DirectedGraph, inverse_power
+from .sparse import SparseOperator, csr_matrix
 
 __all__ = [
     "combinatorial_laplacian",
@@ -47,29 +50,29 @@ __all__ = [
     "pagerank_laplacian",
     "proximity_operators",
     "ProximityOperators",
-    "magnetic_matmul",
-    "magnetic_product",
 ]
 
 _PHASES = ("difference", "sign", "relative")
 _REAL = (torch.float32, torch.float64)
 _COMPLEX = (torch.complex64, torch.complex128)
 _TO_COMPLEX = {torch.float32: torch.complex64, torch.float64: torch.complex128}
+_REAL_OF_COMPLEX = {torch.complex64: torch.float32, torch.complex128: torch.float64}
 
 
 # ---------------------------------------------------------------------- validation
-def _check_graph(graph, what: str = "this operator") -> DirectedGraph:
+def _min_weight(graph: DirectedGraph) -> float:
+    return float(graph.weight.numpy().min()) if graph.num_edges else 0.0
+
+
+def check_graph(graph, what: str = "this operator") -> DirectedGraph:
+    """A DirectedGraph with non-negative weights (every construction here needs them)."""
     if not isinstance(graph, DirectedGraph):
         raise GraphInputError(
             f"graph must be a DirectedGraph (build one with DirectedGraph.from_edges, from_scipy or "
             f"from_networkx); got {type(graph).__name__}"
         )
     check_node_count(graph.num_nodes, what=what)
-    smallest = graph._cache.get("min_weight")
-    if smallest is None:  # weights are immutable: check once per graph
-        smallest = float(graph.weight.numpy().min()) if graph.num_edges else 0.0
-        graph._cache["min_weight"] = smallest
-    if smallest < 0:
+    if graph.cached(_min_weight) < 0:  # weights are immutable: checked once per graph
         k = int(torch.argmin(graph.weight))
         raise GraphInputError(
             f"graph has negative weight {float(graph.weight[k])} on edge {int(graph.source[k])} -> "
@@ -102,7 +105,7 @@ def _check_charge(charge) -> float:
     return q
 
 
-def _check_phase(phase: str) -> str:
+def check_phase(phase: str) -> str:
     return check_choice("phase", phase, _PHASES)
 
 
@@ -127,48 +130,21 @@ def _complex_dtype(dtype) -> torch.dtype:
 
 
 # ---------------------------------------------------------------------- shared pieces
-def _parts(graph: DirectedGraph):
-    """Union pattern of A and A^T (sorted by row, col) with As and A - A^T on it; cached.
-
-    Built without a sort: the graph's canonical edges already form the CSR matrix of A, scipy
-    transposes it by counting (O(nnz + N)) and one canonical merge, ``A + 1j A^T``, gives the
-    union pattern with A's value in the real part and A^T's in the imaginary part, exactly
-    (no arithmetic mixes the two, so reciprocal equal weights give an exact 0 in A - A^T).
-    """
-    cached = graph._cache.get("parts")
-    if cached is not None:
-        return cached
-    n = graph.num_nodes
-    s, t, w = graph.source, graph.target, graph.weight
-    if s.numel() == 0:
-        empty_i = torch.zeros(0, dtype=torch.int64)
-        empty_f = torch.zeros(0, dtype=torch.float64)
-        parts = (empty_i, empty_i, empty_f, empty_f, torch.zeros(n, dtype=torch.float64))
-        graph._cache["parts"] = parts
-        return parts
-    indptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(np.bincount(s.numpy(), minlength=n), out=indptr[1:])
-    A = sp.csr_matrix((w.numpy(), t.numpy(), indptr), shape=(n, n))  # canonical: sorted, unique
-    AT = A.T.tocsr()
-    AT.data = AT.data * 1j  # complex data in place of the real (no copy of the index arrays)
-    A.data = A.data.astype(np.complex128)
-    M = A + AT  # canonical merge of two canonical matrices
-    del A, AT
-    a, b = M.data.real, M.data.imag
-    rows = np.repeat(np.arange(n, dtype=np.int64), np.diff(M.indptr))
-    sym = a + b
-    sym *= 0.5
-    degree = np.bincount(rows, weights=sym, minlength=n)
+def _finite_structure(graph: DirectedGraph):
+    st = graph.structure
+    degree = st.degree.numpy()
     if not np.all(np.isfinite(degree)):
         k = int(np.flatnonzero(~np.isfinite(degree))[0])
         raise GraphInputError(
             f"graph: the degree of node {k} (sum of its symmetrized edge weights) is {degree[k]}, "
             f"beyond the float64 range; rescale the weights"
         )
-    parts = (torch.from_numpy(rows), torch.from_numpy(M.indices.astype(np.int64)), torch.from_numpy(sym),
-             torch.from_numpy(a - b), torch.from_numpy(degree))
-    graph._cache["parts"] = parts
-    return parts
+    return st
+
+
+def _structure(graph: DirectedGraph):
+    """The graph's frozen structure, its degrees checked finite (once per graph)."""
+    return graph.cached(_finite_structure)
 
 
 def _check_degree_range(degree: torch.Tensor, dtype: torch.dtype, what: str) -> float:
@@ -181,21 +157,6 @@ def _check_degree_range(degree: torch.Tensor, dtype: torch.dtype, what: str) -> 
             f"(about {torch.finfo(real).max:.3g}); pass dtype=torch.float64 (complex128) or rescale the weights"
         )
     return dmax
-
-
-def _inv_sqrt(d: torch.Tensor) -> torch.Tensor:
-    """d^-1/2 with 0 where d = 0 (float64, in numpy: single-threaded, no per-op overhead)."""
-    dn = d.numpy()
-    out = np.zeros_like(dn)
-    np.divide(1.0, np.sqrt(dn, where=dn > 0, out=np.zeros_like(dn)), out=out, where=dn > 0)
-    return torch.from_numpy(out)
-
-
-def _inv(d: torch.Tensor) -> torch.Tensor:
-    out = torch.zeros_like(d)
-    pos = d > 0
-    out[pos] = 1.0 / d[pos]
-    return out
 
 
 def _assemble(n: int, rows, cols, vals, dtype, diag: Optional[torch.Tensor] = None) -> torch.Tensor:
@@ -239,41 +200,49 @@ def _assemble_unsorted(n: int, rows, cols, vals, dtype, diag: Optional[torch.Ten
     return csr_matrix(crow, (uniq % max(n, 1)).contiguous(), summed.to(dtype), (n, n))
 
 
-def _phase_base(anti: torch.Tensor, sym: torch.Tensor, phase: str) -> torch.Tensor:
-    """Theta / (2 pi q) on the union pattern: A - A^T, its sign, or (A - A^T) / (A + A^T).
+def phase_base(structure, phase: str) -> torch.Tensor:
+    r"""The angle per unit charge on the structure's non-zeros, float64: :math:`\Theta / q`.
 
-    ``sym`` is :math:`A_s = (A + A^T) / 2`, so the relative base is ``anti / (2 sym)``; it lies
-    in [-1, 1] (non-negative weights) and is 0 where ``sym`` is 0.
+    :math:`2\pi (A - A^T)` for ``phase="difference"``, :math:`2\pi\,\mathrm{sign}(A - A^T)` for
+    ``phase="sign"``, :math:`2\pi (A - A^T) / (A + A^T)` for ``phase="relative"`` (with
+    :math:`A + A^T = 2 A_s`; in [-1, 1] times :math:`2\pi` for non-negative weights, 0 where
+    :math:`A_s` is 0).
     """
+    anti = structure.antisymmetric
     if phase == "difference":
-        return anti
-    if phase == "sign":
-        return torch.sign(anti)
-    out = torch.zeros_like(anti)
-    pos = sym > 0
-    out[pos] = anti[pos] / (2 * sym[pos])
-    return out
+        base = anti
+    elif phase == "sign":
+        base = torch.sign(anti)
+    else:
+        sym = structure.symmetric
+        base = torch.zeros_like(anti)
+        pos = sym > 0
+        base[pos] = anti[pos] / (2 * sym[pos])
+    return base * (2 * math.pi)
 
 
-def _phase_angles(anti: torch.Tensor, sym: torch.Tensor, q: float | torch.Tensor, phase: str):
-    return 2 * math.pi * q * _phase_base(anti, sym, phase)
+def _max_net_flow(graph: DirectedGraph) -> float:
+    anti = graph.structure.antisymmetric
+    return float(anti.abs().max()) if anti.numel() else 0.0
 
 
-def _warn_if_wrapped(graph: DirectedGraph, q: float, phase: str) -> None:
+def _wrap_notice(graph: DirectedGraph) -> dict:
+    return {"warned": False}
+
+
+def warn_if_wrapped(graph: DirectedGraph, q: float, phase: str) -> None:
     r"""Warn (PhaseWrapWarning) when phase="difference" turns some edge pair past pi.
 
     Rule: :math:`2\pi q \max |A - A^T| > \pi`, i.e. :math:`q \max|A - A^T| > 1/2`. Unit
-    weights never trigger it for q in [0, 0.5].
+    weights never trigger it for q in [0, 0.5]. Once per graph (a learned charge changes every
+    step).
     """
     if phase != "difference" or q <= 0:
         return
-    largest = graph._cache.get("max_net_flow")
-    if largest is None:
-        anti = _parts(graph)[3]
-        largest = float(anti.abs().max()) if anti.numel() else 0.0
-        graph._cache["max_net_flow"] = largest
-    if q * largest > 0.5 and not graph._cache.get("wrap_warned"):
-        graph._cache["wrap_warned"] = True  # once per graph: a learned charge changes every step
+    largest = graph.cached(_max_net_flow)
+    notice = graph.cached(_wrap_notice)
+    if q * largest > 0.5 and not notice["warned"]:
+        notice["warned"] = True
         warnings.warn(
             f"phase='difference' with charge {q:g} wraps: the largest net flow |A[u, v] - A[v, u]| is "
             f"{largest:.4g}, above 1 / (2 q) = {1 / (2 * q):.4g}, so its phase passes pi (a flow u -> v "
@@ -286,38 +255,27 @@ def _warn_if_wrapped(graph: DirectedGraph, q: float, phase: str) -> None:
         )
 
 
-def _phasors(magnitude: np.ndarray, angle: np.ndarray, dtype: torch.dtype) -> torch.Tensor:
-    """``magnitude * exp(i angle)`` (float64 arrays, any sign of magnitude) as a complex tensor.
+def magnetic_phasors(magnitude: torch.Tensor, base: torch.Tensor, charge) -> tuple:
+    r"""``(magnitude cos(q base), magnitude sin(q base))``: the magnetic non-zeros, fixed or learned.
 
-    Runs in numpy (single-threaded compiled loops, no per-operation thread start-up). For
-    complex64 results the angle is first reduced to [-pi, pi] in float64, then cos / sin run in
-    float32 (vectorized; about 30x faster than float64 here), so the error stays at the
-    precision of complex64 (about 1e-7 relative) even for large angles. complex128 results use
-    float64 throughout.
+    The one formula for both: the angle :math:`q \cdot \mathrm{base}` is formed in float64 and
+    reduced to [-pi, pi] there; cos and sin then run in the precision of ``magnitude`` (float32
+    or float64), so complex64 values keep complex64 accuracy (about 1e-7 relative) even for
+    large angles. ``charge`` is a float or a 0-dim tensor (possibly requiring grad: the gradient
+    flows through the angle; the reduction subtracts a constant multiple of 2 pi). Returns the
+    real and imaginary parts as two real tensors (what the sparse kernels read).
     """
-    if dtype == torch.complex64:
-        turns = angle * (1 / (2 * np.pi))
-        np.rint(turns, out=turns)
-        turns *= -2 * np.pi
-        turns += angle
-        a, m, real, cdt = turns.astype(np.float32), magnitude.astype(np.float32), np.float32, np.complex64
-    else:
-        a, m, real, cdt = angle, magnitude, np.float64, np.complex128
-    out = np.empty(a.size, dtype=cdt)
-    pairs = out.view(real).reshape(-1, 2)
-    c = np.cos(a)  # contiguous outputs keep numpy's vectorized loops
-    c *= m
-    pairs[:, 0] = c
-    np.sin(a, out=c)
-    c *= m
-    pairs[:, 1] = c
-    return torch.from_numpy(out)
+    q = charge.to(dtype=torch.float64) if isinstance(charge, torch.Tensor) else float(charge)
+    angle = base * q
+    turns = torch.round(angle.detach() * (1 / (2 * math.pi)))
+    angle = (angle - turns * (2 * math.pi)).to(magnitude.dtype)
+    return magnitude * torch.cos(angle), magnitude * torch.sin(angle)
 
 
-def _magnetic_values(graph: DirectedGraph, q: float, phase: str) -> tuple:
-    rows, cols, sym, anti, degree = _parts(graph)
-    angle = _phase_angles(anti, sym, q, phase)
-    return rows, cols, torch.polar(sym, angle), degree
+def _magnetic_values(st, magnitude: torch.Tensor, q: float, phase: str, dtype: torch.dtype) -> torch.Tensor:
+    """``magnitude * exp(i Theta(q))`` on the structure's non-zeros as a complex tensor of ``dtype``."""
+    re, im = magnetic_phasors(magnitude.to(_REAL_OF_COMPLEX[dtype]), phase_base(st, phase), q)
+    return torch.complex(re, im)
 
 
 # ---------------------------------------------------------------------- real operators
@@ -338,19 +296,13 @@ def combinatorial_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype
         >>> combinatorial_laplacian(g).to_dense().tolist()
         [[0.5, -0.5], [-0.5, 0.5]]
     """
-    graph = _check_graph(graph, "combinatorial_laplacian")
+    graph = check_graph(graph, "combinatorial_laplacian")
     dtype = _real_dtype(dtype)
-    rows, cols, sym, _, degree = _parts(graph)
+    st = _structure(graph)
     n = graph.num_nodes
-    dmax = _check_degree_range(degree, dtype, "combinatorial_laplacian")
-    m = _assemble(n, rows, cols, -sym, dtype, diag=degree)
+    dmax = _check_degree_range(st.degree, dtype, "combinatorial_laplacian")
+    m = _assemble(n, st.rows, st.cols, -st.symmetric, dtype, diag=st.degree)
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 2 * dmax), kind="combinatorial_laplacian")
-
-
-def _normalized_adjacency_parts(graph):
-    rows, cols, sym, _, degree = _parts(graph)
-    s = _inv_sqrt(degree)
-    return rows, cols, sym * s[rows] * s[cols], degree
 
 
 def normalized_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = None) -> SparseOperator:
@@ -371,20 +323,19 @@ def normalized_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] =
         >>> normalized_laplacian(g).to_dense().tolist()
         [[1.0, -1.0], [-1.0, 1.0]]
     """
-    graph = _check_graph(graph, "normalized_laplacian")
+    graph = check_graph(graph, "normalized_laplacian")
     dtype = _real_dtype(dtype)
-    rows, cols, vals, _ = _normalized_adjacency_parts(graph)
+    st = _structure(graph)
     n = graph.num_nodes
-    m = _assemble(n, rows, cols, -vals, dtype, diag=torch.ones(n, dtype=torch.float64))
+    m = _assemble(n, st.rows, st.cols, -st.normalized, dtype, diag=torch.ones(n, dtype=torch.float64))
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 2.0), kind="normalized_laplacian")
 
 
-def _similarity_scale(degree: torch.Tensor, power: float) -> torch.Tensor:
-    """d^power on nodes of positive degree, 1 on isolated nodes (they are decoupled)."""
-    out = torch.ones_like(degree)
-    pos = degree > 0
-    out[pos] = degree[pos] ** power
-    return out
+def _similarity_scale(structure, power: float) -> torch.Tensor:
+    """d^power (power +-1/2) on nodes of positive degree, 1 on isolated nodes (they are decoupled)."""
+    d = structure.degree
+    root = structure.inv_sqrt_degree if power < 0 else d.sqrt()
+    return torch.where(d > 0, root, torch.ones_like(d))
 
 
 def random_walk_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = None) -> SparseOperator:
@@ -399,13 +350,14 @@ def random_walk_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] 
         >>> random_walk_laplacian(g).to_dense()[1].tolist()
         [-0.5, 1.0, -0.5]
     """
-    graph = _check_graph(graph, "random_walk_laplacian")
+    graph = check_graph(graph, "random_walk_laplacian")
     dtype = _real_dtype(dtype)
-    rows, cols, sym, _, degree = _parts(graph)
+    st = _structure(graph)
     n = graph.num_nodes
-    m = _assemble(n, rows, cols, -sym * _inv(degree)[rows], dtype, diag=torch.ones(n, dtype=torch.float64))
+    m = _assemble(n, st.rows, st.cols, -st.symmetric * st.inv_degree[st.rows], dtype,
+                  diag=torch.ones(n, dtype=torch.float64))
     base = normalized_laplacian(graph, dtype=dtype)
-    scale = _similarity_scale(degree, -0.5).to(dtype)
+    scale = _similarity_scale(st, -0.5).to(dtype)
     return SparseOperator(m, hermitian=False, spectrum=(0.0, 2.0), kind="random_walk_laplacian",
                           similar=(base, scale))
 
@@ -424,12 +376,11 @@ def renormalized_adjacency(graph: DirectedGraph, *, dtype: Optional[torch.dtype]
         >>> renormalized_adjacency(g).to_dense()[2].tolist()
         [0.0, 0.0, 1.0]
     """
-    graph = _check_graph(graph, "renormalized_adjacency")
+    graph = check_graph(graph, "renormalized_adjacency")
     dtype = _real_dtype(dtype)
-    rows, cols, sym, _, degree = _parts(graph)
-    n = graph.num_nodes
-    s = (degree + 1).rsqrt()
-    m = _assemble(n, rows, cols, sym * s[rows] * s[cols], dtype, diag=s * s)
+    st = _structure(graph)
+    s = (st.degree + 1).rsqrt()  # degrees of As + I are >= 1: no zero-degree case
+    m = _assemble(graph.num_nodes, st.rows, st.cols, st.symmetric * s[st.rows] * s[st.cols], dtype, diag=s * s)
     return SparseOperator(m, hermitian=True, spectrum=(-1.0, 1.0), kind="renormalized_adjacency")
 
 
@@ -471,15 +422,15 @@ def magnetic_adjacency(graph: DirectedGraph, charge: float = 0.25, *, phase: str
         >>> round(h[0, 1].imag.item(), 3), round(h[1, 0].imag.item(), 3)
         (0.5, -0.5)
     """
-    graph = _check_graph(graph, "magnetic_adjacency")
+    graph = check_graph(graph, "magnetic_adjacency")
     q = _check_charge(charge)
-    phase = _check_phase(phase)
-    _warn_if_wrapped(graph, q, phase)
+    phase = check_phase(phase)
+    warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
-    rows, cols, vals, degree = _magnetic_values(graph, q, phase)
+    st = _structure(graph)
     n = graph.num_nodes
-    dmax = _check_degree_range(degree, dtype, "magnetic_adjacency")
-    m = _assemble(n, rows, cols, vals, dtype)
+    dmax = _check_degree_range(st.degree, dtype, "magnetic_adjacency")
+    m = _assemble(n, st.rows, st.cols, _magnetic_values(st, st.symmetric, q, phase, dtype), dtype)
     return SparseOperator(m, hermitian=True, spectrum=(-dmax, dmax), kind="magnetic_adjacency")
 
 
@@ -505,28 +456,23 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
         >>> op.hermitian, op.spectrum
         (True, (0.0, 2.0))
     """
-    graph = _check_graph(graph, "magnetic_laplacian")
+    graph = check_graph(graph, "magnetic_laplacian")
     q = _check_charge(charge)
-    phase = _check_phase(phase)
-    _warn_if_wrapped(graph, q, phase)
+    phase = check_phase(phase)
+    warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
     normalized = check_flag("normalized", normalized)
     n = graph.num_nodes
+    st = _structure(graph)
     if normalized:
-        rows, cols, sym, anti, degree = _parts(graph)
-        s = _inv_sqrt(degree).numpy()
-        magnitude = s[rows.numpy()]  # -As[u, v] / sqrt(d_u d_v), in numpy (single pass each)
-        magnitude *= s[cols.numpy()]
-        magnitude *= sym.numpy()
-        np.negative(magnitude, out=magnitude)
-        base = _phase_base(anti, sym, phase).numpy()
-        vals = _phasors(magnitude, base * (2 * math.pi * q), dtype)
-        m = _assemble(n, rows, cols, vals, dtype, diag=torch.ones(n, dtype=torch.float64))
+        # the values of D^-1/2 H(q) D^-1/2, by the same arithmetic as a learned charge
+        vals = _magnetic_values(st, st.normalized, q, phase, dtype)
+        m = _assemble(n, st.rows, st.cols, vals.neg_(), dtype, diag=torch.ones(n, dtype=torch.float64))
         spectrum = (0.0, 2.0)
     else:
-        rows, cols, vals, degree = _magnetic_values(graph, q, phase)
-        dmax = _check_degree_range(degree, dtype, "magnetic_laplacian(normalized=False)")
-        m = _assemble(n, rows, cols, -vals, dtype, diag=degree)
+        dmax = _check_degree_range(st.degree, dtype, "magnetic_laplacian(normalized=False)")
+        vals = _magnetic_values(st, st.symmetric, q, phase, dtype)
+        m = _assemble(n, st.rows, st.cols, vals.neg_(), dtype, diag=st.degree)
         spectrum = (0.0, 2 * dmax)
     return SparseOperator(m, hermitian=True, spectrum=spectrum,
                           kind="magnetic_laplacian" if normalized else "magnetic_laplacian_unnormalized")
@@ -554,22 +500,20 @@ def diffusion(graph: DirectedGraph, charge: Optional[float] = None, *, phase: st
         >>> diffusion(g).to_dense().tolist()
         [[0.5, 0.5], [0.5, 0.5]]
     """
-    graph = _check_graph(graph, "diffusion")
-    phase = _check_phase(phase)  # checked even when charge is None: a typo is never ignored
+    graph = check_graph(graph, "diffusion")
+    phase = check_phase(phase)  # checked even when charge is None: a typo is never ignored
     n = graph.num_nodes
     half = torch.full((n,), 0.5, dtype=torch.float64)
+    st = _structure(graph)
     if charge is None:
         dtype = _real_dtype(dtype)
-        rows, cols, vals, _ = _normalized_adjacency_parts(graph)
-        m = _assemble(n, rows, cols, vals / 2, dtype, diag=half)
+        m = _assemble(n, st.rows, st.cols, st.normalized / 2, dtype, diag=half)
         return SparseOperator(m, hermitian=True, spectrum=(0.0, 1.0), kind="diffusion")
     q = _check_charge(charge)
-    phase = _check_phase(phase)
-    _warn_if_wrapped(graph, q, phase)
+    warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
-    rows, cols, vals, degree = _magnetic_values(graph, q, phase)
-    s = _inv_sqrt(degree)
-    m = _assemble(n, rows, cols, vals * (s[rows] * s[cols]) / 2, dtype, diag=half)
+    vals = _magnetic_values(st, st.normalized, q, phase, dtype)
+    m = _assemble(n, st.rows, st.cols, vals.div_(2), dtype, diag=half)
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 1.0), kind="magnetic_diffusion")
 
 
@@ -591,20 +535,19 @@ def random_walk(graph: DirectedGraph, lazy: bool = True, *, dtype: Optional[torc
         >>> random_walk(g).to_dense().sum(0).tolist()
         [1.0, 1.0, 1.0]
     """
-    graph = _check_graph(graph, "random_walk")
+    graph = check_graph(graph, "random_walk")
     dtype = _real_dtype(dtype)
     lazy = check_flag("lazy", lazy)
-    rows, cols, sym, _, degree = _parts(graph)
+    st = _structure(graph)
     n = graph.num_nodes
-    vals = sym * _inv(degree)[cols]
-    scale = _similarity_scale(degree, 0.5).to(dtype)
+    vals = st.symmetric * st.inv_degree[st.cols]
+    scale = _similarity_scale(st, 0.5).to(dtype)
     if lazy:
-        m = _assemble(n, rows, cols, vals / 2, dtype, diag=torch.full((n,), 0.5, dtype=torch.float64))
+        m = _assemble(n, st.rows, st.cols, vals / 2, dtype, diag=torch.full((n,), 0.5, dtype=torch.float64))
         base = diffusion(graph, dtype=dtype)
         return SparseOperator(m, hermitian=False, spectrum=(0.0, 1.0), kind="lazy_random_walk", similar=(base, scale))
-    m = _assemble(n, rows, cols, vals, dtype)
-    nr, nc, nv, _ = _normalized_adjacency_parts(graph)
-    base = SparseOperator(_assemble(n, nr, nc, nv, dtype), hermitian=True, spectrum=(-1.0, 1.0),
+    m = _assemble(n, st.rows, st.cols, vals, dtype)
+    base = SparseOperator(_assemble(n, st.rows, st.cols, st.normalized, dtype), hermitian=True, spectrum=(-1.0, 1.0),
                           kind="normalized_adjacency")
     return SparseOperator(m, hermitian=False, spectrum=(-1.0, 1.0), kind="random_walk", similar=(base, scale))
 
@@ -653,7 +596,7 @@ def pagerank_laplacian(graph: DirectedGraph, teleport: float = 0.05, *, dtype: O
         >>> round(float(op.to_dense().sum()), 6)
         0.0
     """
-    graph = _check_graph(graph, "pagerank_laplacian")
+    graph = check_graph(graph, "pagerank_laplacian")
     dtype = _real_dtype(dtype)
     if isinstance(teleport, bool) or not isinstance(teleport, numbers.Real) or not (0.0 < float(teleport) < 1.0):
         raise GraphInputError(f"teleport must be a probability in (0, 1); got {teleport!r}")
@@ -669,7 +612,7 @@ def pagerank_laplacian(graph: DirectedGraph, teleport: float = 0.05, *, dtype: O
     A = graph.to_scipy("csr").astype(np.float64)
     out_deg = np.asarray(A.sum(axis=1)).ravel()
     dangling = out_deg == 0
-    inv_out = np.where(dangling, 0.0, 1.0 / np.where(dangling, 1.0, out_deg))
+    inv_out = inverse_power(out_deg)
     P_sparse = sp.diags((1 - t) * inv_out) @ A
     c = np.where(dangling, 1.0 / n, t / n)
     pi = _stationary(P_sparse.T.tocsr(), c, tol, max_iter)
@@ -733,13 +676,13 @@ def proximity_operators(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = 
         >>> ops.second_out.to_dense()[0, 1].item() > 0
         True
     """
-    graph = _check_graph(graph, "proximity_operators")
+    graph = check_graph(graph, "proximity_operators")
     dtype = _real_dtype(dtype)
     A = graph.to_scipy("csr").astype(np.float64)
     in_deg = np.asarray(A.sum(axis=0)).ravel()
     out_deg = np.asarray(A.sum(axis=1)).ravel()
-    inv_in = np.where(in_deg > 0, 1.0 / np.where(in_deg > 0, in_deg, 1.0), 0.0)
-    inv_out = np.where(out_deg > 0, 1.0 / np.where(out_deg > 0, out_deg, 1.0), 0.0)
+    inv_in = inverse_power(in_deg)
+    inv_out = inverse_power(out_deg)
     sym = (A + A.T) * 0.5
     second_out = (A @ sp.diags(inv_in) @ A.T).tolil()
     second_out.setdiag(0)
@@ -750,139 +693,3 @@ def proximity_operators(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = 
         _renormalize_scipy(sp.csr_matrix(second_out), dtype, "proximity_second_out"),
         _renormalize_scipy(sp.csr_matrix(second_in), dtype, "proximity_second_in"),
     )
-
-
-# ---------------------------------------------------------------------- learned charge
-def _magnetic_pattern(graph: DirectedGraph):
-    """Fixed CSR pattern of D^-1/2 H D^-1/2 and the real pieces of its values; cached.
-
-    Returns ``(crow, cols, rows, magnitude, anti)``: int64 CSR indices (sorted by row, then
-    column), the row of each non-zero, :math:`(A_s)_{uv} / \\sqrt{d_u d_v}` and
-    :math:`(A - A^T)_{uv}` (float64) on the non-zeros of :math:`A + A^T`.
-    """
-    cached = graph._cache.get("magnetic_pattern")
-    if cached is not None:
-        return cached
-    rows, cols, sym, anti, degree = _parts(graph)
-    n = graph.num_nodes
-    s = _inv_sqrt(degree)
-    magnitude = sym * s[rows] * s[cols]
-    crow = torch.zeros(n + 1, dtype=torch.int64)
-    crow[1:] = torch.cumsum(torch.bincount(rows, minlength=n), 0)
-    pattern = (crow, cols.contiguous(), rows.contiguous(), magnitude, anti)
-    graph._cache["magnetic_pattern"] = pattern
-    return pattern
-
-
-def _magnetic_factors(graph: DirectedGraph, phase: str, dtype: torch.dtype, device) -> tuple:
-    """Pattern and ``(magnitude, 2 pi base)`` in ``dtype`` on ``device``, cached per combination.
-
-    The values at charge q are ``polar(magnitude, q * 2 pi base)``: one multiply and one polar
-    per call, with nothing converted again.
-    """
-    key = ("magnetic_factors", phase, dtype, str(device))
-    cached = graph._cache.get(key)
-    if cached is not None:
-        return cached
-    crow, cols, rows, magnitude, anti = _magnetic_pattern(graph)
-    base = _phase_angles(anti, _parts(graph)[2], 1.0, phase)
-    factors = tuple(t.to(device=device) for t in (crow, cols, rows)) + (
-        magnitude.to(device=device, dtype=dtype), base.to(device=device, dtype=dtype))
-    graph._cache[key] = factors
-    return factors
-
-
-def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str = "difference"):
-    r"""The map :math:`x \mapsto L_{norm}(q)\, x` at a tensor charge, with the values built once.
-
-    :math:`L_{norm}(q) x = x - D^{-1/2} H(q) D^{-1/2} x`. The non-zero values
-    :math:`w_{uv} e^{i \Theta_{uv}(q)} / \sqrt{d_u d_v}` are computed from ``charge`` with torch
-    ops on a fixed sparsity pattern (cached on the graph) when this function is called; every
-    call of the returned map reuses them, so a K-step Chebyshev recursion computes (and keeps
-    for the backward) one value array, not K. :class:`phasorgraph.sparse.PatternOperator` carries
-    the gradient from the values to q (a fused value-gradient kernel). Build a new map whenever the charge changes (once per
-    forward pass in a layer).
-
-    Args:
-        graph: a DirectedGraph with non-negative weights.
-        charge: 0-dim real floating tensor q (may require grad). Not range-checked (the
-            operator is periodic in q); layers keep it in [0, 0.5] themselves.
-        phase: "difference" (default), "sign" or "relative".
-
-    The precision and device of the values follow ``charge``.
-
-    Returns:
-        A :class:`phasorgraph.sparse.PatternOperator` ``I - A(q)``: call it (or its ``matmul``)
-        on x (N, ...) real or complex of the charge's precision for the complex (N, ...)
-        product (real x is multiplied without being cast to complex); its ``matmul_add`` gives
-        the fused ``alpha L x + shift x + beta z`` of a Chebyshev step.
-
-    Example:
-        >>> import torch
-        >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
-        >>> q = torch.tensor(0.1, requires_grad=True)
-        >>> apply = magnetic_product(g, q)
-        >>> y = apply(apply(torch.ones(3, 2)))
-        >>> y.abs().sum().backward(); q.grad is not None
-        True
-    """
-    graph = _check_graph(graph, "magnetic_product")
-    phase = _check_phase(phase)
-    if not isinstance(charge, torch.Tensor) or charge.dim() != 0 or not charge.dtype.is_floating_point:
-        raise GraphInputError(
-            f"charge must be a 0-dim real floating tensor; got "
-            f"{type(charge).__name__ if not isinstance(charge, torch.Tensor) else f'shape {tuple(charge.shape)}, dtype {charge.dtype}'}"
-        )
-    real = charge.dtype
-    if real not in _REAL:
-        raise GraphInputError(f"charge must be float32 or float64; got {real}")
-    if charge.device.type != "meta":  # a meta tensor holds no value to check
-        _warn_if_wrapped(graph, abs(float(charge.detach())), phase)
-    crow, cols, rows, magnitude, base = _magnetic_factors(graph, phase, real, charge.device)
-    angle = base * charge
-    # the non-zeros of D^-1/2 H(q) D^-1/2 as two real arrays (what the kernels read)
-    return PatternOperator(crow, cols, magnitude * torch.cos(angle), magnitude * torch.sin(angle),
-                           hermitian=True, identity=1.0, scale=-1.0, _checked=True)
-
-
-def magnetic_matmul(graph: DirectedGraph, charge: torch.Tensor, x: torch.Tensor, *,
-                    phase: str = "difference") -> torch.Tensor:
-    r"""The normalized magnetic Laplacian at a tensor charge times x, differentiable in both.
-
-    :math:`y = L_{norm}(q)\, x = x - D^{-1/2} H(q) D^{-1/2} x`, built as in
-    :func:`magnetic_product` (values from ``charge`` with torch ops on a cached fixed pattern;
-    :class:`phasorgraph.sparse.PatternOperator` carries the gradient to q). For several products
-    at the same charge, call :func:`magnetic_product` once and reuse the map.
-
-    Args:
-        graph: a DirectedGraph with non-negative weights.
-        charge: 0-dim real tensor q (may require grad), not range-checked.
-        x: (N, ...) real or complex features; the precision of ``charge`` must match.
-        phase: "difference" (default), "sign" or "relative".
-
-    Returns:
-        (N, ...) complex tensor.
-
-    Example:
-        >>> import torch
-        >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
-        >>> q = torch.tensor(0.1, dtype=torch.float64, requires_grad=True)
-        >>> y = magnetic_matmul(g, q, torch.ones(3, 2, dtype=torch.float64))
-        >>> y.abs().sum().backward(); q.grad is not None
-        True
-    """
-    n = graph.num_nodes if isinstance(graph, DirectedGraph) else None
-    if n is not None and (not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != n):
-        raise GraphInputError(f"x must have num_nodes = {n} rows (shape (N, ...)); got shape {tuple(getattr(x, 'shape', ()))}")
-    apply = magnetic_product(graph, charge, phase=phase)
-    if x.dtype not in _REAL + _COMPLEX:
-        raise GraphInputError(f"x must be float32, float64, complex64 or complex128; got {x.dtype}")
-    if x.device != charge.device:
-        raise GraphInputError(
-            f"x is on {x.device} but charge on {charge.device}; put them on the same device"
-            + (" (the meta device holds no values)" if x.device.type == "meta" else "")
-        )
-    precision = torch.float64 if x.dtype in (torch.float64, torch.complex128) else torch.float32
-    if precision != charge.dtype:
-        raise GraphInputError(f"charge has dtype {charge.dtype} but x has precision {precision}; use the same precision")
-    return apply(x)

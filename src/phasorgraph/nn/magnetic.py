@@ -10,7 +10,7 @@ import torch
 from torch import nn
 
 from ..errors import GraphInputError
-from ..operators import _check_phase, magnetic_laplacian
+from ..operators import check_phase, magnetic_laplacian
 from ._chebyshev import ChebyshevBase
 from ._layer import COMPLEX_OF, check_features, check_graph_like, empty_output
 
@@ -176,7 +176,7 @@ class MagneticFilter(ChebyshevBase):
       step q stays strictly inside (0, 0.5), at least 1.6e-7 from either end in float32, and
       its gradient never vanishes. The start must therefore lie in the open interval (0, 0.5). The
       operator is then rebuilt from q on every forward through ``graph.magnetic_product``
-      (:func:`phasorgraph.operators.magnetic_product`; values built once per forward,
+      (:func:`phasorgraph.learned_charge.magnetic_product`; values built once per forward,
       differentiable in q). :meth:`freeze_charge` turns a learned charge into a fixed one.
 
     With a fixed charge the operator comes from ``graph.operator(magnetic_laplacian, ...)``:
@@ -251,7 +251,7 @@ class MagneticFilter(ChebyshevBase):
                 f"out_channels must be a multiple of the number of charges ({groups}) so each charge "
                 f"gets out_channels // {groups} channels; got out_channels = {self.out_channels}"
             )
-        self.phase = _check_phase(phase)
+        self.phase = check_phase(phase)
         if self.learns_charge:
             self.charge_logit = nn.Parameter(torch.empty(groups, dtype=self.weight.dtype, device=self.weight.device))
         else:
@@ -299,8 +299,8 @@ class MagneticFilter(ChebyshevBase):
 
         Example:
             >>> layer = MagneticFilter(2, 2, order=1, charge=LearnedCharge(start=0.1))
-            >>> layer.freeze_charge().learns_charge, layer.initial_charge
-            (False, (0.1,))
+            >>> layer.freeze_charge().learns_charge, [round(q, 6) for q in layer.initial_charge]
+            (False, [0.1])
         """
         if self.learns_charge:
             self.initial_charge = self._current_charges()
