@@ -19,7 +19,13 @@ References used below (each also named beside its formula):
   densely in NumPy straight from the formulas, independent of phasorgraph.operators;
 * spectral filters evaluated with ``numpy.linalg.eigh`` and ``numpy.polynomial.chebyshev.chebval``
   on the eigenvalues, or ``numpy.interp`` for knot multipliers;
-* elementwise formulas of the complex activations from their papers.
+* elementwise formulas of the complex activations from their papers;
+* band-pass layers (family "bandpass"): dense wavelets, learned bands, scattering coefficients
+  and band-mixing channels from numpy.linalg.matrix_power (tests/dense.py; Coifman & Maggioni
+  2006, Gama et al. 2019, Gao et al. 2019, Tong et al. 2021, Min et al. 2020), moments from
+  scipy.stats.
+
+The dense formulas live once, in tests/dense.py; this module only wires them to the layers.
 """
 
 from __future__ import annotations
@@ -32,24 +38,31 @@ from typing import Callable, Optional
 import numpy as np
 import pytest
 import torch
-from numpy.polynomial import chebyshev as npcheb
 
+import dense
 from phasorgraph import (
     DirectedGraph,
     combinatorial_laplacian,
+    diffusion,
     magnetic_laplacian,
     normalized_laplacian,
+    random_walk,
     renormalized_adjacency,
 )
 from phasorgraph.nn import (
+    BandMix,
     Cardioid,
     ChebyshevFilter,
     ComplexToReal,
+    DiffusionScattering,
+    DiffusionWavelets,
     LearnedCharge,
     MagneticFilter,
     ModReLU,
+    MomentReadout,
     RealPartGate,
     RenormalizedFilter,
+    ScaleSelector,
     SpectralMultiplier,
     SplitReLU,
     ZReLU,
@@ -87,57 +100,12 @@ def features(n: int, width: int, dtype: torch.dtype, complex_values: bool, seed:
     return x
 
 
-# ---------------------------------------------------------------------- numpy references
-def _inv_sqrt(d):
-    out = np.zeros_like(d)
-    out[d > 0] = 1.0 / np.sqrt(d[d > 0])
-    return out
-
-
-def np_normalized_magnetic_laplacian(A: np.ndarray, q: float, phase: str = "difference") -> np.ndarray:
-    """I - D^-1/2 H(q) D^-1/2, H = As * exp(i 2 pi q (A - A^T)) (Zhang et al. 2021; DESIGN.md).
-
-    q = 0 gives the normalized Laplacian of As. Zero degrees give D^-1/2 = 0 (DESIGN.md).
-    """
-    As = (A + A.T) / 2
-    anti = A - A.T if phase == "difference" else np.sign(A - A.T)
-    H = As * np.exp(1j * 2 * np.pi * q * anti)
-    s = _inv_sqrt(As.sum(axis=1))
-    return np.eye(A.shape[0]) - s[:, None] * H * s[None, :]
-
-
-def np_normalized_laplacian(A):
-    return np_normalized_magnetic_laplacian(A, 0.0).real
-
-
-def np_combinatorial_laplacian(A):
-    """D - As (the textbook combinatorial Laplacian of the symmetrized graph)."""
-    As = (A + A.T) / 2
-    return np.diag(As.sum(axis=1)) - As
-
-
-def np_renormalized_adjacency(A):
-    """D~^-1/2 (As + I) D~^-1/2 (Kipf & Welling 2017, eq. 2)."""
-    As = (A + A.T) / 2 + np.eye(A.shape[0])
-    s = 1.0 / np.sqrt(As.sum(axis=1))
-    return s[:, None] * As * s[None, :]
-
-
-def np_chebyshev_filter(L: np.ndarray, x: np.ndarray, W: np.ndarray, lmax: float) -> np.ndarray:
-    """sum_k U T_k(2 lam / lmax - 1) U^H x W_k, evaluated on the eigenvalues.
-
-    Source: numpy.linalg.eigh for L = U diag(lam) U^H and numpy.polynomial.chebyshev.chebval for
-    T_k (the coefficient vector e_k), independent of the layer's three-term recursion.
-    """
-    lam, U = np.linalg.eigh(L)
-    t = 2 * lam / lmax - 1
-    xh = U.conj().T @ x
-    out = 0
-    for k in range(W.shape[0]):
-        e = np.zeros(k + 1)
-        e[k] = 1.0
-        out = out + U @ (npcheb.chebval(t, e)[:, None] * xh) @ W[k]
-    return out
+# ---------------------------------------------------------------------- numpy references (tests/dense.py)
+np_normalized_magnetic_laplacian = dense.normalized_magnetic_laplacian
+np_normalized_laplacian = dense.normalized_laplacian
+np_combinatorial_laplacian = dense.combinatorial_laplacian
+np_renormalized_adjacency = dense.renormalized_adjacency
+np_chebyshev_filter = dense.chebyshev_filter
 
 
 def np_weights(t: torch.Tensor, complex_pairs: bool) -> np.ndarray:
@@ -213,6 +181,64 @@ _ELEMENTWISE = {
     "modulus": lambda z: np.abs(z),
     "polar": lambda z: np.concatenate([np.abs(z), np.angle(z)], axis=-1),
 }
+
+
+def _dense_diffusion(kind: str, A):
+    """The dense operator a band-pass spec is given: lazy diffusion T, its magnetic form at q = 0.2,
+    or the lazy walk P (tests/dense.py)."""
+    ref = dense.DenseGraph(A)
+    return {"real": ref.T(), "magnetic": ref.T(0.2), "walk": ref.P()}[kind]
+
+
+def _diffusion_operand(kind: str):
+    def operand(g, p):
+        if kind == "magnetic":
+            return diffusion(g, charge=0.2, dtype=_cplx(p))
+        return diffusion(g, dtype=p) if kind == "real" else random_walk(g, dtype=p)
+    return operand
+
+
+def _ref_wavelets(kind):
+    def ref(m, x, A):
+        bands = dense.wavelet_bands(_dense_diffusion(kind, A), m.scales)
+        return np.stack([B @ x for B in bands], axis=1)
+    return ref
+
+
+def _ref_selector(m, x, A):
+    bands = dense.selector_bands(_dense_diffusion("real", A), m.selection.detach().numpy())
+    return np.stack([B @ x for B in bands], axis=1)
+
+
+def _ref_scattering(kind, order, lowpass):
+    def ref(m, x, A):
+        c = dense.scattering(_dense_diffusion(kind, A), x, m.scales, order, lowpass)
+        c = c.reshape(c.shape[0], -1)
+        if m.weight is None:
+            return c
+        return c @ m.weight.detach().numpy().T + np_bias(m)
+    return ref
+
+
+def _ref_band_mix(m, x, A):
+    # channels from tests/dense.py; maps and attention as the layer's docstring writes them
+    z = dense.band_mix_channels(A, x, m.low_pass_steps, m.scales)
+    h = np.einsum("ncf,cof->nco", z, m.weight.detach().numpy()) + np_bias(m)
+    a = m.attention.detach().numpy()
+    score = h @ a[0] + (h.mean(axis=1) @ a[1])[:, None]
+    score = np.where(score > 0, score, 0.2 * score)                 # LeakyReLU(0.2)
+    alpha = np.exp(score - score.max(axis=1, keepdims=True))
+    alpha /= alpha.sum(axis=1, keepdims=True)                       # softmax over channels
+    return (alpha[..., None] * h).sum(axis=1)
+
+
+def _ref_moments(m, x, A):
+    # scipy.stats: mean, population variance, skew(bias=True), Pearson kurtosis(bias=True)
+    import scipy.stats
+
+    cols = [x.mean(axis=0), scipy.stats.moment(x, moment=2, axis=0),
+            scipy.stats.skew(x, axis=0, bias=True), scipy.stats.kurtosis(x, axis=0, fisher=False, bias=True)]
+    return np.stack(cols[:m.moments], axis=0).reshape(1, -1)
 
 
 # ---------------------------------------------------------------------- the spec table
@@ -337,6 +363,31 @@ SPECS = [
               complex_input=True, reference=(lambda f: (lambda m, z, A: f(z)))(_ELEMENTWISE[mode]),
               repr_contains=("ComplexToReal",))
     for mode in ("cartesian", "modulus", "polar")
+] + [
+    # ------------------------------------------------------------------ band-pass
+    LayerSpec(f"wavelets_{kind}", "bandpass", (lambda **kw: DiffusionWavelets(2)), 3,
+              complex_input=(kind == "magnetic"), operand=_diffusion_operand(kind), reference=_ref_wavelets(kind),
+              repr_contains=("DiffusionWavelets(scales=2)",))
+    for kind in ("real", "magnetic", "walk")
+] + [
+    LayerSpec("scale_selector", "bandpass", lambda **kw: ScaleSelector(4, 2, **kw), 3,
+              operand=_diffusion_operand("real"), reference=_ref_selector, repr_contains=("ScaleSelector(",)),
+    LayerSpec("scattering_order1", "bandpass", lambda **kw: DiffusionScattering(3, scales=2), 3,
+              operand=_diffusion_operand("real"), reference=_ref_scattering("real", 1, True),
+              repr_contains=("DiffusionScattering(3, scales=2)",)),
+    LayerSpec("scattering_order2_mixed_magnetic", "bandpass",
+              lambda **kw: DiffusionScattering(3, scales=2, order=2, out_channels=4, **kw), 3,
+              operand=_diffusion_operand("magnetic"), reference=_ref_scattering("magnetic", 2, True),
+              repr_contains=("order=2", "out_channels=4")),
+    LayerSpec("scattering_walk_no_lowpass", "bandpass",
+              lambda **kw: DiffusionScattering(3, scales=1, order=2, lowpass=False), 3,
+              operand=_diffusion_operand("walk"), reference=_ref_scattering("walk", 2, False),
+              repr_contains=("lowpass=False",)),
+    LayerSpec("band_mix", "bandpass", lambda **kw: BandMix(3, 4, (0, 1, 2), 2, **kw), 3,
+              operand=lambda g, p: g, reference=_ref_band_mix,
+              repr_contains=("BandMix(3, 4, low_pass_steps=(0, 1, 2), scales=2)",)),
+    LayerSpec("moment_readout", "bandpass", lambda **kw: MomentReadout(4), 3, reference=_ref_moments,
+              equivariant=False, repr_contains=("MomentReadout(",)),
 ]
 
 

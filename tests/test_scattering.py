@@ -13,6 +13,8 @@ from hypothesis import strategies as st
 
 from phasorgraph import DirectedGraph, GraphInputError, operators
 from phasorgraph.nn import DiffusionScattering
+import dense
+from layer_specs import GENERIC_CHECKS, specs_for
 from strategies import charges, directed_graphs, features
 
 
@@ -36,27 +38,8 @@ def _operator(kind):
 
 
 def _reference(op, x, J, order, lowpass=True):
-    """Dense numpy reference, (N, K, F), one feature column and one path at a time."""
-    T = op.to_dense().numpy()
-    n = T.shape[0]
-    P = [np.eye(n)] + [np.linalg.matrix_power(T, 2 ** j) for j in range(J + 1)]
-    psi = [P[i] - P[i + 1] for i in range(J + 1)]
-    phi = P[-1] if lowpass else np.eye(n)
-
-    def low(v):
-        out = phi @ v  # complex low-pass outputs take a modulus; real ones keep their sign
-        return np.abs(out) if np.iscomplexobj(out) else out
-
-    cols = []
-    for f in range(x.shape[1]):
-        v = x[:, f]
-        coeffs = [low(v)]
-        coeffs += [low(np.abs(psi[j] @ v)) for j in range(J + 1)]
-        if order == 2:
-            coeffs += [low(np.abs(psi[j2] @ np.abs(psi[j1] @ v)))
-                       for j1 in range(J + 1) for j2 in range(j1 + 1, J + 1)]
-        cols.append(np.stack(coeffs, axis=1))
-    return np.stack(cols, axis=2)
+    """Dense numpy reference, (N, K, F), one feature column and one path at a time (tests/dense.py)."""
+    return dense.scattering(op.to_dense().numpy(), x, J, order, lowpass)
 
 
 def _x(f=3, seed=0, dtype=torch.float64):
@@ -213,40 +196,12 @@ def test_refuses_wrong_features_and_laplacian():
 
 
 # ---------------------------------------------------------------------- module conventions, all band-pass layers
-def _band_layers(**kw):
-    from phasorgraph.nn import BandMix, DiffusionWavelets, MomentReadout, ScaleSelector
-
-    return [
-        ("wavelets", DiffusionWavelets(2), "op"),
-        ("selector", ScaleSelector(4, 2, **kw), "op"),
-        ("scattering", DiffusionScattering(3, 2, order=2, out_channels=4, **kw), "op"),
-        ("bandmix", BandMix(3, 4, (1, 2), 2, **kw), "graph"),
-        ("readout", MomentReadout(4), "none"),
-    ]
-
-
-def _call(layer, how, x, graph):
-    if how == "op":
-        return layer(x, operators.diffusion(graph, dtype=torch.float64))
-    if how == "graph":
-        return layer(x, graph)
-    return layer(x)
-
-
-def test_factory_kwargs_pickle_state_dict_and_non_contiguous_input():
-    import pickle
-
-    g = _graph()
-    x = _x()
-    x_nc = torch.randn(3, 7, dtype=torch.float64).T  # non-contiguous (7, 3)
-    fresh_layers = [layer for _, layer, _ in _band_layers(dtype=torch.float64)]
-    for (name, layer, how), fresh in zip(_band_layers(dtype=torch.float64), fresh_layers):
-        assert all(p.dtype == torch.float64 for p in layer.parameters()), name
-        clone = pickle.loads(pickle.dumps(layer))
-        torch.testing.assert_close(_call(clone, how, x, g), _call(layer, how, x, g))
-        fresh.load_state_dict(layer.state_dict())
-        torch.testing.assert_close(_call(fresh, how, x, g), _call(layer, how, x, g))
-        torch.testing.assert_close(_call(layer, how, x_nc, g), _call(layer, how, x_nc.contiguous(), g))
+# reference forward, factory kwargs (meta device), repr, pickle / torch.save / state_dict, non-contiguous
+# input, gradcheck and permutation equivariance for every band-pass layer: the generic layer table
+@pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)
+@pytest.mark.parametrize("spec", specs_for("bandpass"), ids=str)
+def test_generic(spec, check):
+    check(spec)
 
 
 def test_scale_selector_permutation_equivariant():

@@ -18,6 +18,7 @@ from hypothesis import strategies as st
 
 from phasorgraph import DirectedGraph, GraphInputError, operators, spectral
 from phasorgraph.nn import DiffusionWavelets, ScaleSelector
+import dense
 from strategies import charges, directed_graphs
 
 
@@ -34,11 +35,8 @@ def _operator(graph, kind, charge=0.25):
 
 
 def _dense_bands(op, scales):
-    """Psi_0 .. Psi_J, Phi_J as dense numpy matrices via numpy.linalg.matrix_power (reference)."""
-    T = op.to_dense().numpy()
-    n = T.shape[0]
-    P = [np.eye(n, dtype=T.dtype)] + [np.linalg.matrix_power(T, 2 ** j) for j in range(scales + 1)]
-    return [P[i] - P[i + 1] for i in range(scales + 1)] + [P[-1]]
+    """Psi_0 .. Psi_J, Phi_J as dense numpy matrices via numpy.linalg.matrix_power (tests/dense.py)."""
+    return dense.wavelet_bands(op.to_dense().numpy(), scales)
 
 
 def _small_graph():
@@ -156,12 +154,7 @@ def test_wavelets_isolated_nodes_and_empty_graph_no_nan():
 
 # ---------------------------------------------------------------------- ScaleSelector
 def _dense_selector(op, selection):
-    T = op.to_dense().numpy()
-    n = T.shape[0]
-    S, t1 = selection.shape
-    powers = [np.linalg.matrix_power(T, t) for t in range(t1)]
-    B = [np.eye(n)] + [sum(selection[j, t] * powers[t] for t in range(t1)) for j in range(S)]
-    return [B[i] - B[i + 1] for i in range(S)] + [B[-1]]
+    return dense.selector_bands(op.to_dense().numpy(), selection)
 
 
 @pytest.mark.parametrize("kind", KINDS)
