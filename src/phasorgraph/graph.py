@@ -198,7 +198,6 @@ class GraphStructure(NamedTuple):
         inv_sqrt_degree, inv_degree: (N,) :math:`d^{-1/2}` and :math:`d^{-1}`, 0 where d = 0.
         normalized: (nnz,) :math:`(A_s)_{uv} / \sqrt{d_u d_v}`, the values of
             :math:`D^{-1/2} A_s D^{-1/2}`.
-        min_weight: the smallest edge weight (0.0 for a graph without edges).
     """
 
     crow: torch.Tensor
@@ -210,7 +209,6 @@ class GraphStructure(NamedTuple):
     inv_sqrt_degree: torch.Tensor
     inv_degree: torch.Tensor
     normalized: torch.Tensor
-    min_weight: float
 
 
 def _structure(source: torch.Tensor, target: torch.Tensor, weight: torch.Tensor, n: int) -> GraphStructure:
@@ -226,7 +224,7 @@ def _structure(source: torch.Tensor, target: torch.Tensor, weight: torch.Tensor,
         empty_f = torch.zeros(0, dtype=torch.float64)
         zeros = torch.zeros(n, dtype=torch.float64)
         return GraphStructure(torch.zeros(n + 1, dtype=torch.int64), empty_i, empty_i, empty_f, empty_f, zeros,
-                              zeros, zeros, empty_f, 0.0)
+                              zeros, zeros, empty_f)
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(np.bincount(source.numpy(), minlength=n), out=indptr[1:])
     A = sp.csr_matrix((weight.numpy(), target.numpy(), indptr), shape=(n, n))  # canonical: sorted, unique
@@ -249,7 +247,7 @@ def _structure(source: torch.Tensor, target: torch.Tensor, weight: torch.Tensor,
     return GraphStructure(torch.from_numpy(M.indptr.astype(np.int64)), torch.from_numpy(rows), torch.from_numpy(cols),
                           torch.from_numpy(sym), torch.from_numpy(a - b), torch.from_numpy(degree),
                           torch.from_numpy(s), torch.from_numpy(inverse_power(degree, 1.0)),
-                          torch.from_numpy(normalized), float(weight.numpy().min()))
+                          torch.from_numpy(normalized))
 
 
 def _moved(graph: "DirectedGraph", inner: Callable[..., Any], device: str, options: tuple) -> Any:
