@@ -25,14 +25,15 @@ import torch
 from _common import print_table, time_stats, write_results
 
 from phasorgraph.data import directed_block_model, split_link_presence
-from phasorgraph.data.generators import _block_edges, _num_pairs
+from phasorgraph.data._pairs import num_pairs
+from phasorgraph.data.generators import _block_edges
 
 FLOW = np.array([[0.5, 0.8, 0.8, 0.8], [0.2, 0.5, 0.8, 0.8], [0.2, 0.2, 0.5, 0.8], [0.2, 0.2, 0.2, 0.5]])
 
 
 def setting(n: int, e: int):
     sizes = [n // 4] * 3 + [n - 3 * (n // 4)]
-    return sizes, e / _num_pairs(n)
+    return sizes, e / num_pairs(n)
 
 
 def scale_rows(grid, repeats):

@@ -23,12 +23,12 @@ from phasorgraph.data import (
     out_star,
     random_out_graph,
 )
-from phasorgraph.data.generators import (
-    _index_from_pair,
-    _num_pairs,
-    _pair_from_index,
-    _sample_avoiding,
-    _sample_distinct,
+from phasorgraph.data._pairs import (
+    index_from_pair as _index_from_pair,
+    num_pairs as _num_pairs,
+    pair_from_index as _pair_from_index,
+    sample_avoiding as _sample_avoiding,
+    sample_distinct as _sample_distinct,
 )
 
 SIGMAS = 5.0  # tolerance in binomial standard deviations (common practice, no source)

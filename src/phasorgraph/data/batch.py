@@ -18,7 +18,7 @@ from .._checks import check_flag
 from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
 from .._groups import group_max, group_mean, group_sum
-from .generators import _rng
+from ._pairs import seeded_generator
 
 __all__ = ["GraphBatch", "iterate_batches"]
 
@@ -181,7 +181,7 @@ def iterate_batches(graphs: Sequence[DirectedGraph], targets: Optional[torch.Ten
     for i, g in enumerate(graphs):
         if not isinstance(g, DirectedGraph):
             raise GraphInputError(f"graphs[{i}] must be a DirectedGraph; got {type(g).__name__}")
-    order = _rng(seed).permutation(len(graphs)) if check_flag("shuffle", shuffle) else np.arange(len(graphs))
+    order = seeded_generator(seed).permutation(len(graphs)) if check_flag("shuffle", shuffle) else np.arange(len(graphs))
     return _batches(graphs, targets, order, int(batch_size))
 
 

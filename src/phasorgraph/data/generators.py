@@ -5,11 +5,8 @@ int, or a Generator) and vectorized: edge counts are drawn per block pair from t
 law, then that many distinct node pairs are drawn at once; nothing allocates an N x N array
 or loops over nodes or edges in Python.
 
-Unordered node pairs of a block (or of the whole graph) are numbered by an exact integer
-bijection (:func:`_pair_from_index`), so drawing distinct pairs is drawing distinct integers
-from ``range(M)``: by independent uniform draws and de-duplication while fewer than half of
-the M pairs are wanted, and by drawing the complement when more than half are wanted. Both
-give every subset of the requested size the same probability.
+Distinct node pairs are drawn exactly and uniformly by :mod:`phasorgraph.data._pairs` (shared
+with the link splits).
 """
 
 from __future__ import annotations
@@ -24,6 +21,7 @@ import torch
 from .._limits import check_node_count, physical_memory
 from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
+from ._pairs import index_from_pair, num_pairs, pair_from_index, seeded_generator, sample_avoiding, sample_distinct
 
 __all__ = [
     "directed_block_model",
@@ -38,13 +36,6 @@ _TOL = 1e-9
 
 
 # ---------------------------------------------------------------------- validation helpers
-def _rng(seed: Any) -> np.random.Generator:
-    if isinstance(seed, np.random.Generator):
-        return seed
-    if seed is None or (isinstance(seed, numbers.Integral) and not isinstance(seed, bool) and seed >= 0):
-        return np.random.default_rng(seed)
-    raise GraphInputError(f"seed must be None, a non-negative int or a numpy Generator; got {seed!r}")
-
 
 def _count(name: str, value: Any, minimum: int = 0) -> int:
     if isinstance(value, bool) or not isinstance(value, numbers.Integral) or int(value) < minimum:
@@ -149,100 +140,6 @@ def _check_flow(flow: Any, blocks: int) -> np.ndarray:
     return f
 
 
-# ---------------------------------------------------------------------- exact pair sampling
-def _num_pairs(n: int) -> int:
-    """Unordered pairs of distinct nodes among n."""
-    return n * (n - 1) // 2
-
-
-def _pair_from_index(k: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    r"""The k-th unordered pair of distinct nodes of ``range(n)``, as (low, high); exact integers.
-
-    Pair k is :math:`\{c, (c + d) \bmod n\}` with ``d = k // n + 1``, ``c = k % n`` for
-    ``k < n h`` (h = (n - 1) // 2), and ``d = n / 2``, ``c = k - n h`` for the last n / 2 pairs
-    when n is even. Every unordered pair appears exactly once for k in ``range(n (n - 1) / 2)``.
-    """
-    k = np.asarray(k, dtype=np.int64)
-    h = (n - 1) // 2
-    main = k < n * h
-    d = np.where(main, k // max(n, 1) + 1, n // 2)
-    c = np.where(main, k % max(n, 1), k - n * h)
-    other = (c + d) % max(n, 1)
-    return np.minimum(c, other), np.maximum(c, other)
-
-
-def _index_from_pair(u: np.ndarray, v: np.ndarray, n: int) -> np.ndarray:
-    """Inverse of :func:`_pair_from_index` for distinct u, v (either order)."""
-    lo = np.minimum(u, v).astype(np.int64)
-    hi = np.maximum(u, v).astype(np.int64)
-    gap = hi - lo
-    h = (n - 1) // 2
-    forward = gap < n - gap  # the short way round goes lo -> hi
-    d = np.where(forward, gap, n - gap)
-    c = np.where(forward, lo, hi)
-    half = 2 * gap == n  # only for even n: the diameter pairs, started at lo < n / 2
-    return np.where(half, n * h + lo, (d - 1) * n + c)
-
-
-def _sorted_unique(x: np.ndarray) -> np.ndarray:
-    """Sorted distinct values by one sort (np.unique is much slower on large int64 arrays here)."""
-    s = np.sort(x)
-    if s.size < 2:
-        return s
-    keep = np.empty(s.size, dtype=bool)
-    keep[0] = True
-    np.not_equal(s[1:], s[:-1], out=keep[1:])
-    return s[keep]
-
-
-def _sample_few(rng: np.random.Generator, m: int, k: int) -> np.ndarray:
-    """k distinct integers of range(m), uniformly over k-subsets, for k <= m / 2 (sorted).
-
-    Independent uniform draws are pooled and de-duplicated until k distinct values are seen;
-    the distinct set, given its size, is uniform over subsets of that size (the draws are
-    exchangeable under relabelling), so dropping a uniform random surplus keeps it uniform.
-    """
-    found = np.empty(0, dtype=np.int64)
-    while found.size < k:
-        want, left = k - found.size, m - found.size
-        draws = int(math.ceil(-left * math.log1p(-want / left) * 1.02)) + 16
-        found = _sorted_unique(np.concatenate([found, rng.integers(0, m, size=draws, dtype=np.int64)]))
-    if found.size > k:
-        found = np.delete(found, rng.choice(found.size, found.size - k, replace=False))
-    return found
-
-
-def _sample_distinct(rng: np.random.Generator, m: int, k: int) -> np.ndarray:
-    """k distinct integers of range(m), every k-subset equally likely (sorted).
-
-    Few (k <= m / 2): pooled uniform draws, de-duplicated. Many: the complement is drawn
-    that way and the rest enumerated, which costs O(m) <= O(2 k) memory.
-    """
-    if k <= 0:
-        return np.empty(0, dtype=np.int64)
-    if k >= m:
-        return np.arange(m, dtype=np.int64)
-    if 2 * k <= m:
-        return _sample_few(rng, m, k)
-    keep = np.ones(m, dtype=bool)
-    keep[_sample_few(rng, m, m - k)] = False
-    return np.flatnonzero(keep).astype(np.int64)
-
-
-def _sample_avoiding(rng: np.random.Generator, m: int, k: int, taken: np.ndarray) -> np.ndarray:
-    """k distinct integers of range(m) outside the sorted distinct array ``taken``, uniformly.
-
-    Draws ranks in the complement and maps rank r to the r-th integer not in ``taken``
-    (``r + #{taken <= value}``, by a binary search on ``taken - arange``).
-    """
-    free = m - taken.size
-    if k > free:
-        raise GraphInputError(f"cannot draw {k} distinct pairs: only {free} are free")
-    ranks = _sample_distinct(rng, free, k)
-    shifted = taken - np.arange(taken.size, dtype=np.int64)
-    return ranks + np.searchsorted(shifted, ranks, side="right")
-
-
 def _block_edges(rng, sizes: np.ndarray, prob: np.ndarray, direction: np.ndarray):
     """Oriented edges (source, target) of the block model, written once into preallocated arrays."""
     offsets = np.concatenate([[0], np.cumsum(sizes)])
@@ -262,9 +159,9 @@ def _block_edges(rng, sizes: np.ndarray, prob: np.ndarray, direction: np.ndarray
     for a, b, m, k in zip(a_ids.tolist(), b_ids.tolist(), trials.tolist(), counts.tolist()):
         if k == 0:  # loop over block pairs only; all edge work is vectorized
             continue
-        idx = _sample_distinct(rng, m, k)
+        idx = sample_distinct(rng, m, k)
         if a == b:
-            lo, hi = _pair_from_index(idx, int(sizes[a]))
+            lo, hi = pair_from_index(idx, int(sizes[a]))
             lo += offsets[a]
             hi += offsets[a]
         else:
@@ -321,19 +218,19 @@ def directed_block_model(sizes: Sequence[int], density: Any, flow: Any, noise: f
     direction = _check_flow(flow, blocks)
     if isinstance(noise, bool) or not isinstance(noise, numbers.Real) or not math.isfinite(noise) or noise < 0:
         raise GraphInputError(f"noise must be a finite fraction >= 0 of the edge count; got {noise!r}")
-    rng = _rng(seed)
+    rng = seeded_generator(seed)
     n = int(sizes_arr.sum())
     src, dst = _block_edges(rng, sizes_arr, prob, direction)
     extra = int(round(float(noise) * src.size))
     if extra:
-        free = _num_pairs(n) - src.size
+        free = num_pairs(n) - src.size
         if extra > free:
             raise GraphInputError(
                 f"noise asks for {extra} extra edges but only {free} node pairs are not yet joined; "
                 f"lower noise (accepted: noise * edges <= free pairs)"
             )
-        taken = np.sort(_index_from_pair(src, dst, n))
-        nlo, nhi = _pair_from_index(_sample_avoiding(rng, _num_pairs(n), extra, taken), n)
+        taken = np.sort(index_from_pair(src, dst, n))
+        nlo, nhi = pair_from_index(sample_avoiding(rng, num_pairs(n), extra, taken), n)
         flip = rng.random(extra) < 0.5
         src = np.concatenate([src, np.where(flip, nhi, nlo)])
         dst = np.concatenate([dst, np.where(flip, nlo, nhi)])
@@ -410,7 +307,7 @@ def random_out_graph(n: int, k: int, seed: Any = None) -> DirectedGraph:
             f"n * k = {n * k} edges is more than this machine's memory can hold "
             f"({physical_memory() / 2 ** 30:.3g} GiB); lower n or k"
         )
-    rng = _rng(seed)
+    rng = seeded_generator(seed)
     others = n - 1
     chosen = np.empty((n, k), dtype=np.int64)
     for step, j in enumerate(range(others - k, others)):  # Floyd: k steps, vectorized over nodes
@@ -449,14 +346,14 @@ def layered_flow_graph(layer_sizes: Sequence[int], forward_prob: float, back_pro
     sizes = _sizes("layer_sizes", layer_sizes)
     p_fwd = _probability("forward_prob", forward_prob)
     p_back = _probability("back_prob", back_prob)
-    rng = _rng(seed)
+    rng = seeded_generator(seed)
     offsets = np.concatenate([[0], np.cumsum(sizes)])
     srcs, dsts = [], []
     for layer in range(sizes.size - 1):  # loop over layers only
         na, nb = int(sizes[layer]), int(sizes[layer + 1])
         m = na * nb
         for p, forward in ((p_fwd, True), (p_back, False)):
-            idx = _sample_distinct(rng, m, int(rng.binomial(m, p)) if m else 0)
+            idx = sample_distinct(rng, m, int(rng.binomial(m, p)) if m else 0)
             u, v = idx // max(nb, 1) + offsets[layer], idx % max(nb, 1) + offsets[layer + 1]
             srcs.append(u if forward else v); dsts.append(v if forward else u)
     src = np.concatenate(srcs) if srcs else np.empty(0, dtype=np.int64)

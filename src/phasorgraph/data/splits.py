@@ -21,7 +21,7 @@ import torch
 
 from ..errors import GraphInputError, _value_text
 from ..graph import DirectedGraph
-from .generators import _index_from_pair, _num_pairs, _pair_from_index, _rng, _sample_avoiding, _sample_distinct
+from ._pairs import index_from_pair, num_pairs, pair_from_index, sample_avoiding, sample_distinct, seeded_generator
 
 __all__ = ["NodeSplit", "LinkSet", "LinkSplit", "split_nodes", "split_link_presence", "split_link_orientation"]
 
@@ -121,7 +121,7 @@ def split_nodes(labels: Any, train: float = 0.6, val: float = 0.2, seed: Any = N
             )
         keep &= mask
     fr_train, fr_val = _fractions("train", train, "val", val, allow_one=True)
-    rng = _rng(seed)
+    rng = seeded_generator(seed)
     nodes = np.flatnonzero(keep)  # the labeled nodes; positions below index into it
     y = y[nodes]
     n = y.size
@@ -153,7 +153,7 @@ def _three_way(rng, items: np.ndarray, first: int, second: int):
 
     The rest keeps the order of ``items`` (sequential memory access on large arrays).
     """
-    picked = _sample_distinct(rng, items.size, first + second)
+    picked = sample_distinct(rng, items.size, first + second)
     picked = picked[rng.permutation(picked.size)]
     rest = np.ones(items.size, dtype=bool)
     rest[picked] = False
@@ -294,7 +294,7 @@ def _split_links(graph: DirectedGraph, one_way_only: bool, val_fraction: float, 
     if not isinstance(graph, DirectedGraph):
         raise GraphInputError(f"graph must be a DirectedGraph; got {type(graph).__name__}")
     fr_val, fr_test = _fractions("val_fraction", val_fraction, "test_fraction", test_fraction, allow_one=False)
-    rng = _rng(seed)
+    rng = seeded_generator(seed)
     n = graph.num_nodes
     src, dst = graph.source.numpy(), graph.target.numpy()
     off = src != dst
@@ -327,17 +327,17 @@ def _split_links(graph: DirectedGraph, one_way_only: bool, val_fraction: float, 
     sizes = [train_ids.size, val_ids.size, test_ids.size]
     total = sum(sizes)
     if total:
-        taken = np.sort(_index_from_pair(link_src, link_dst, n))
-        free = _num_pairs(n) - taken.size
+        taken = np.sort(index_from_pair(link_src, link_dst, n))
+        free = num_pairs(n) - taken.size
         if total > free:
             raise GraphInputError(
                 f"graph has only {free} non-adjacent node pairs but split_link_presence needs {total} "
                 f"negatives (one per link); the graph is too dense for balanced negatives"
             )
-        neg_val, neg_test, neg_train = _three_way(rng, _sample_avoiding(rng, _num_pairs(n), total, taken),
+        neg_val, neg_test, neg_train = _three_way(rng, sample_avoiding(rng, num_pairs(n), total, taken),
                                                   sizes[1], sizes[2])
         neg = np.concatenate([neg_train, neg_val, neg_test])
-        nlo, nhi = _pair_from_index(neg, n)
+        nlo, nhi = pair_from_index(neg, n)
         flip = rng.random(neg.size) < 0.5
         neg_src, neg_dst = np.where(flip, nhi, nlo), np.where(flip, nlo, nhi)
     else:
