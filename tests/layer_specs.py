@@ -120,10 +120,10 @@ def np_bias(module) -> np.ndarray | float:
 
 
 # ---------------------------------------------------------------------- references per layer
-def _ref_chebyshev(build_L, lmax: Optional[float] = None):
+def _ref_chebyshev(build_L, max_eigenvalue: Optional[float] = None):
     def ref(m, x, A):
         L = build_L(A)
-        lm = lmax if lmax is not None else float(np.linalg.eigvalsh(L)[-1])
+        lm = max_eigenvalue if max_eigenvalue is not None else float(np.linalg.eigvalsh(L)[-1])
         return np_chebyshev_filter(L, x, np_weights(m.weight, m.complex_weights), lm) + np_bias(m)
     return ref
 
@@ -158,7 +158,7 @@ def _ref_magnetic(m, x, A):
     blocks = []
     for g, qg in enumerate(q):
         L = np_normalized_magnetic_laplacian(A, float(qg), m.phase)
-        # lmax = 2: the normalized magnetic Laplacian has spectrum in [0, 2]
+        # max_eigenvalue = 2: the normalized magnetic Laplacian has spectrum in [0, 2]
         blocks.append(np_chebyshev_filter(L, x, W[:, :, g * width:(g + 1) * width], 2.0))
     return np.concatenate(blocks, axis=1) + np_bias(m)
 
@@ -310,7 +310,7 @@ SPECS = [
               lambda **kw: ChebyshevFilter(2, 3, order=2, complex_weights=True, max_eigenvalue=2.0, **kw), 2,
               complex_input=True,
               operand=lambda g, p: magnetic_laplacian(g, 0.2, dtype=_cplx(p)),
-              reference=_ref_chebyshev(lambda A: np_normalized_magnetic_laplacian(A, 0.2), lmax=2.0),
+              reference=_ref_chebyshev(lambda A: np_normalized_magnetic_laplacian(A, 0.2), max_eigenvalue=2.0),
               repr_contains=("complex_weights=True", "max_eigenvalue=2.0")),
     LayerSpec("renormalized_graph", "filters", lambda **kw: RenormalizedFilter(3, 5, **kw), 3,
               operand=lambda g, p: g, reference=_ref_renormalized,

@@ -36,20 +36,29 @@ def test_generic(spec, check):
 
 
 # ---------------------------------------------------------------------- ChebyshevFilter
-def test_chebyshev_lmax_is_computed_once_and_kept_on_the_operator():
+def test_chebyshev_max_eigenvalue_is_computed_once_and_the_operator_is_not_changed(monkeypatch):
+    calls = []
+    real = filters_module.largest_eigenvalue
+    monkeypatch.setattr(filters_module, "largest_eigenvalue", lambda *a, **k: calls.append(1) or real(*a, **k))
     g, A = reference_graph()
     op = combinatorial_laplacian(g, dtype=torch.float64)
     assert op.max_eigenvalue is None
     layer = ChebyshevFilter(3, 2, order=2, dtype=torch.float64)
+    other = ChebyshevFilter(3, 2, order=2, dtype=torch.float64)
     x = features(7, 3, torch.float64, False)
-    layer(x, op)
-    # source: numpy.linalg.eigvalsh of D - As
+    y = layer(x, op)
+    layer(x, op), other(x, op)
+    assert len(calls) == 1                  # one eigenvalue per operator, shared by the layers
+    assert op.max_eigenvalue is None        # a forward pass never changes the operator
+    # source: numpy.linalg.eigvalsh of D - As, and the dense Chebyshev reference at that value
     As = (A + A.T) / 2
-    expected = np.linalg.eigvalsh(np.diag(As.sum(1)) - As)[-1]
-    assert op.max_eigenvalue == pytest.approx(expected, rel=1e-8)
+    L = np.diag(As.sum(1)) - As
+    expected = np.linalg.eigvalsh(L)[-1]
+    W, b = layer.weight.detach().numpy(), layer.bias.detach().numpy()
+    np.testing.assert_allclose(y.detach().numpy(), np_chebyshev_filter(L, x.numpy(), W, expected) + b, atol=1e-9)
 
 
-def test_chebyshev_fixed_lmax_skips_the_eigenvalue_and_forward_lmax_overrides():
+def test_chebyshev_fixed_max_eigenvalue_skips_the_eigenvalue_and_forward_max_eigenvalue_overrides():
     g, A = reference_graph()
     op = normalized_laplacian(g, dtype=torch.float64)
     x = features(7, 3, torch.float64, False)
@@ -162,7 +171,7 @@ def test_spectral_multiplier_caches_the_basis_per_operator(monkeypatch):
     x = features(7, 3, torch.float32, False)
     a(x, op), a(x, op), b(x, op)
     assert len(calls) == 1
-    assert op in filters_module._FOURIER_CACHE
+    assert not hasattr(op, "fourier_basis") and op.max_eigenvalue is None   # kept beside op, not on it
 
 
 def test_spectral_multiplier_refuses_large_graphs():

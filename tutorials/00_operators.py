@@ -37,13 +37,13 @@ def main() -> None:
         "random_walk": pg.random_walk,
         "pagerank_laplacian": pg.pagerank_laplacian,
     }
-    print(f"{'operator':30s} {'nnz':>9s} {'dtype':>15s} {'hermitian':>9s} {'lmax':>8s} {'build s':>8s}")
+    print(f"{'operator':30s} {'nnz':>9s} {'dtype':>15s} {'hermitian':>9s} {'max eig':>8s} {'build s':>8s}")
     for name, build in builders.items():
         t0 = time.perf_counter()
         op = build(graph)
         dt = time.perf_counter() - t0
-        lmax = spectral.largest_eigenvalue(op) if op.hermitian else float("nan")
-        print(f"{name:30s} {op.nnz:9d} {str(op.dtype):>15s} {str(op.hermitian):>9s} {lmax:8.4f} {dt:8.3f}")
+        max_eig = spectral.largest_eigenvalue(op) if op.hermitian else float("nan")
+        print(f"{name:30s} {op.nnz:9d} {str(op.dtype):>15s} {str(op.hermitian):>9s} {max_eig:8.4f} {dt:8.3f}")
 
 
 if __name__ == "__main__":

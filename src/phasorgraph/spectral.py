@@ -71,7 +71,8 @@ def _power_iteration(op: SparseOperator, iterations: int = 300, seed: int = 0, s
     return lam + shift
 
 
-def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool = False) -> float:
+def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool = False,
+                       remember: bool = True) -> float:
     r"""The largest eigenvalue of a Hermitian operator (largest modulus otherwise), cached on ``op``.
 
     Hermitian operators with at most 64 rows use dense ``numpy.linalg.eigvalsh``; larger ones
@@ -81,12 +82,15 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
     Otherwise, or if Lanczos does not converge, power iteration estimates the largest
     eigenvalue (shifted by the lower end of a known ``spectrum`` when Hermitian, so a large
     negative eigenvalue cannot win) or, for a general operator, the spectral radius.
-    The value is stored in ``op.max_eigenvalue`` and returned from there on later calls.
+    The value is stored in ``op.max_eigenvalue`` and returned from there on later calls
+    (``remember=False`` leaves ``op`` unchanged: layers compute it that way and keep it in their
+    shared weak cache, so a forward pass never changes an operator).
 
     Args:
         op: a SparseOperator.
         tol: Lanczos tolerance.
         refresh: recompute even if ``op.max_eigenvalue`` is set.
+        remember: store the value in ``op.max_eigenvalue`` (default True).
 
     Example:
         >>> from phasorgraph import DirectedGraph, normalized_laplacian
@@ -97,6 +101,7 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
     op = _check_operator(op)
     tol = check_positive_number("tol", tol)
     refresh = check_flag("refresh", refresh)
+    remember = check_flag("remember", remember)
     if op.max_eigenvalue is not None and not refresh:
         return op.max_eigenvalue
     if op.num_rows != op.num_nodes:
@@ -110,12 +115,13 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
         return op.max_eigenvalue
     n = op.num_rows
     if n == 0:
-        op.max_eigenvalue = 0.0
+        if remember:
+            op.max_eigenvalue = 0.0
         return 0.0
     value = None
     if not op.hermitian and op.similar is not None:
         # op = diag(s) base diag(1/s): same eigenvalues as the Hermitian base
-        value = largest_eigenvalue(op.similar[0], tol=tol, refresh=refresh)
+        value = largest_eigenvalue(op.similar[0], tol=tol, refresh=refresh, remember=remember)
     elif op.hermitian:
         if n <= 64:
             dense = op.to(torch.complex128 if op.is_complex else torch.float64, device="cpu").to_dense().numpy()
@@ -131,7 +137,8 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
     if value is None:
         shift = op.spectrum[0] if (op.hermitian and op.spectrum is not None) else 0.0
         value = _power_iteration(op, shift=shift)
-    op.max_eigenvalue = value
+    if remember:
+        op.max_eigenvalue = value
     return value
 
 

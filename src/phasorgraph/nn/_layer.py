@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Callable, Optional
+import weakref
+from typing import Any, Callable, Optional
 
 import torch
 from torch import nn
@@ -153,6 +154,23 @@ def check_graph_like(graph, layer: str, needs: tuple = GRAPH_LIKE):
             f"of a distributed graph) for {layer}; got {type(graph).__name__}, which lacks {', '.join(missing)}"
         )
     return graph
+
+
+# ---------------------------------------------------------------------- what layers derive from an operator
+#: values layers compute from an operator they are given (its largest eigenvalue, its Fourier
+#: basis): one cache shared by every layer, holding each operator weakly (an entry goes when its
+#: operator goes), so a forward pass never changes an operator and keeps nothing alive
+_DERIVED: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
+
+
+def derived(op, key: tuple, build: Callable[[], Any]) -> Any:
+    """``build()`` computed once per (operator, key) and kept while the operator lives."""
+    entry = _DERIVED.get(op)
+    if entry is None:
+        entry = _DERIVED[op] = {}
+    if key not in entry:
+        entry[key] = build()
+    return entry[key]
 
 
 # ---------------------------------------------------------------------- parameters

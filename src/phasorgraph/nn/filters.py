@@ -12,15 +12,15 @@ DistributedDataParallel treat them like any other float parameter; ``torch.view_
 turns them into the complex weights.
 
 No layer registers a sparse tensor as a buffer or parameter: operators built from a graph are
-kept with the graph (``graph.operator(builder, ...)``), Fourier bases in a module-level weak
-cache keyed by the operator.
+kept with the graph (``graph.operator(builder, ...)``); what a layer derives from an operator it
+is given (largest eigenvalue, Fourier basis) sits in one weak cache shared by all layers
+(``nn._layer.derived``), and no forward pass changes an operator.
 """
 
 from __future__ import annotations
 
 import math
 import numbers
-import weakref
 from typing import Optional, Sequence
 
 import numpy as np
@@ -35,7 +35,7 @@ from ..operators import renormalized_adjacency
 from ..sparse import SparseOperator
 from ..spectral import DENSE_NODE_LIMIT, fourier_basis, largest_eigenvalue
 from ._chebyshev import ChebyshevBase
-from ._layer import (COMPLEX_OF, bilinear, check_count, check_features, check_graph_like, check_operator, empty_output,
+from ._layer import (COMPLEX_OF, bilinear, derived, check_count, check_features, check_graph_like, check_operator, empty_output,
                      factory_kwargs, make_parameters, mix, output_dtype, reset_uniform)
 
 __all__ = ["ChebyshevFilter", "RenormalizedFilter", "SpectralMultiplier"]
@@ -57,8 +57,8 @@ def _chebyshev_rescaling(op: SparseOperator, max_eigenvalue: Optional[float]) ->
     Laplacians, -1 for renormalized adjacencies, :math:`-d_{max}` for a magnetic adjacency), so
     an indefinite operator is mapped onto [-1, 1] as well, instead of being rescaled as if its
     spectrum started at 0 (its terms would then grow geometrically with k). ``b`` is
-    ``max_eigenvalue`` when given, else the largest eigenvalue of ``op`` (computed once and
-    remembered on the operator). An operator with ``b = a`` (the zero Laplacian of a graph
+    ``max_eigenvalue`` when given, else the largest eigenvalue of ``op`` (computed once per
+    operator and kept in the layers' shared weak cache; the operator is not changed). An operator with ``b = a`` (the zero Laplacian of a graph
     without edges) gives :math:`\tilde L = -I`.
     """
     if op.spectrum is None:
@@ -69,7 +69,11 @@ def _chebyshev_rescaling(op: SparseOperator, max_eigenvalue: Optional[float]) ->
             f"which sets it"
         )
     a = float(op.spectrum[0])
-    b = largest_eigenvalue(op) if max_eigenvalue is None else float(max_eigenvalue)
+    if max_eigenvalue is None:
+        # computed once per operator and kept in the layers' shared weak cache: op is not changed
+        b = derived(op, ("max_eigenvalue",), lambda: largest_eigenvalue(op, remember=False))
+    else:
+        b = float(max_eigenvalue)
     if b < a - 1e-12 * max(1.0, abs(a)):
         raise GraphInputError(
             f"max_eigenvalue {b:.6g} lies below the lower end {a:.6g} of op's spectrum interval "
@@ -95,8 +99,8 @@ class ChebyshevFilter(ChebyshevBase):
 
     :math:`\lambda_{max}` comes from, in this order: the ``max_eigenvalue`` argument of ``forward``,
     the ``max_eigenvalue`` given to the constructor, or
-    :func:`phasorgraph.spectral.largest_eigenvalue` (computed once per operator and remembered
-    there). Pass ``max_eigenvalue=2`` for normalized Laplacians
+    :func:`phasorgraph.spectral.largest_eigenvalue` (computed once per operator and kept in the
+    layers' shared weak cache; the operator itself is not changed). Pass ``max_eigenvalue=2`` for normalized Laplacians
     (their spectrum lies in [0, 2]) to skip the eigenvalue computation. An operator whose largest
     eigenvalue equals the lower end a (the Laplacian of a graph without edges) gives
     :math:`\tilde L = -I`.
@@ -253,23 +257,13 @@ class RenormalizedFilter(nn.Module):
 
 
 # ---------------------------------------------------------------------- spectral multiplier
-#: Fourier bases per operator (weak keys: an entry goes when its operator goes)
-_FOURIER_CACHE: "weakref.WeakKeyDictionary[SparseOperator, dict]" = weakref.WeakKeyDictionary()
-
 PER_EIGENVALUE = "per_eigenvalue"
 
 
 def _cached_basis(op: SparseOperator, dtype: torch.dtype, device, max_nodes: int):
     """(eigenvalues float64 CPU, eigenvectors in ``dtype`` on ``device``), one eigh per operator."""
-    entry = _FOURIER_CACHE.get(op)
-    if entry is None:
-        lam, U = fourier_basis(op, max_nodes=max_nodes)
-        entry = {"lam": lam, "U": U}
-        _FOURIER_CACHE[op] = entry
-    key = (dtype, str(device))
-    if key not in entry:
-        entry[key] = entry["U"].to(device=device, dtype=dtype)
-    return entry["lam"], entry[key]
+    lam, U = derived(op, ("fourier_basis",), lambda: fourier_basis(op, max_nodes=max_nodes))
+    return lam, derived(op, ("fourier_basis", dtype, str(device)), lambda: U.to(device=device, dtype=dtype))
 
 
 def _components(op: SparseOperator) -> torch.Tensor:
