@@ -5,8 +5,9 @@ phasorgraph.operators (only the graph's raw edges are read). Sources:
 
 * the symmetrized adjacency As = (A + A^T) / 2 and degrees d = As 1 (DESIGN.md);
 * zero degree: D^-1/2 and D^-1 of a zero degree are 0 (DESIGN.md);
-* the magnetic adjacency H(q) = As * exp(i Theta), Theta = 2 pi q (A - A^T) or 2 pi q sign(A - A^T)
-  (Zhang et al. 2021; Shubin 1994), normalized magnetic Laplacian I - D^-1/2 H D^-1/2;
+* the magnetic adjacency H(q) = As * exp(i Theta), Theta = 2 pi q (A - A^T), 2 pi q sign(A - A^T)
+  (Zhang et al. 2021; Shubin 1994) or 2 pi q (A - A^T) / (A + A^T) (the relative phase, as
+  phasorgraph.operators documents it), normalized magnetic Laplacian I - D^-1/2 H D^-1/2;
 * the renormalized adjacency D~^-1/2 (As + I) D~^-1/2 (Kipf & Welling 2017, eq. 2);
 * lazy diffusion T = (I + D^-1/2 As D^-1/2) / 2 and walk P = As D^-1 (Coifman & Maggioni 2006);
 * Chebyshev filters evaluated with numpy.linalg.eigh and numpy.polynomial.chebyshev.chebval.
@@ -35,7 +36,12 @@ def inverse_root(d: np.ndarray, power: float = 0.5) -> np.ndarray:
 
 
 def phase_angles(A: np.ndarray, q: float, phase: str = "difference") -> np.ndarray:
+    """Theta = 2 pi q (A - A^T), 2 pi q sign(A - A^T), or 2 pi q (A - A^T) / (A + A^T) (0 where
+    A + A^T = 0; phase="relative", the net-flow fraction)."""
     diff = A - A.T
+    if phase == "relative":
+        total = A + A.T
+        return 2 * np.pi * q * np.divide(diff, total, out=np.zeros_like(A), where=total > 0)
     return 2 * np.pi * q * (diff if phase == "difference" else np.sign(diff))
 
 

@@ -14,6 +14,7 @@ import torch
 from hypothesis import given
 from hypothesis import strategies as st
 
+import dense
 from phasorgraph import DirectedGraph, GraphInputError, diffusion, magnetic_adjacency, magnetic_laplacian, magnetic_matmul
 from phasorgraph.errors import PhaseWrapWarning
 from phasorgraph.nn import MagneticFilter
@@ -24,18 +25,9 @@ TOL = dict(rtol=1e-10, atol=1e-10)
 
 
 def _dense_relative(g: DirectedGraph, q: float):
-    """(H, L_norm, L, T) with the relative phase, from the dense adjacency (numpy)."""
-    n = g.num_nodes
-    A = np.zeros((n, n))
-    np.add.at(A, (g.source.numpy(), g.target.numpy()), g.weight.numpy())
-    total = A + A.T
-    frac = np.divide(A - A.T, total, out=np.zeros_like(A), where=total > 0)
-    H = (total / 2) * np.exp(1j * 2 * np.pi * q * frac)
-    d = (total / 2).sum(axis=1)
-    s = np.divide(1.0, np.sqrt(d), out=np.zeros_like(d), where=d > 0)
-    S = np.diag(s)
-    I = np.eye(n)
-    return H, I - S @ H @ S, np.diag(d) - H, (I + S @ H @ S) / 2
+    """(H, L_norm, L, T) with the relative phase, from the dense adjacency (numpy; tests/dense.py)."""
+    ref = dense.DenseGraph(g)
+    return (ref.H(q, "relative"), ref.mag_norm(q, "relative"), ref.mag(q, "relative"), ref.T(q, "relative"))
 
 
 def _ops(g, q):
