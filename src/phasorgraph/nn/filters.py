@@ -267,25 +267,21 @@ def _cached_basis(op: SparseOperator, dtype: torch.dtype, device, max_nodes: int
 
 
 def _components(op: SparseOperator) -> torch.Tensor:
-    """(N,) int64 connected-component label of each node in the pattern of ``op`` (cached with the basis).
+    """(N,) int64 connected-component label of each node in the pattern of ``op`` (kept like the basis).
 
     An operator with a dense low-rank term couples every node: one component.
     """
-    entry = _FOURIER_CACHE.get(op)
-    labels = entry.get("components") if entry is not None else None
-    if labels is None:
-        n = op.num_rows
-        if op.low_rank is not None:
-            labels = torch.zeros(n, dtype=torch.int64)
-        else:
+    return derived(op, ("components",), lambda: _component_labels(op))
 
-            m = op.matrix.to("cpu")
-            crow, col = m.crow_indices().numpy(), m.col_indices().numpy()
-            pattern = sp.csr_matrix((np.ones(col.size, dtype=np.int8), col, crow), shape=(n, n))
-            labels = torch.as_tensor(connected_components(pattern, directed=False)[1].astype(np.int64))
-        if entry is not None:
-            entry["components"] = labels
-    return labels
+
+def _component_labels(op: SparseOperator) -> torch.Tensor:
+    n = op.num_rows
+    if op.low_rank is not None:
+        return torch.zeros(n, dtype=torch.int64)
+    m = op.matrix.to("cpu")
+    crow, col = m.crow_indices().numpy(), m.col_indices().numpy()
+    pattern = sp.csr_matrix((np.ones(col.size, dtype=np.int8), col, crow), shape=(n, n))
+    return torch.as_tensor(connected_components(pattern, directed=False)[1].astype(np.int64))
 
 
 def _poison_components(out: torch.Tensor, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:

@@ -66,8 +66,8 @@ class MomentReadout(nn.Module):
     Example:
         >>> import torch
         >>> x = torch.tensor([[1.0], [2.0], [3.0], [5.0], [5.0]])
-        >>> MomentReadout(moments=2)(x, torch.tensor([0, 0, 0, 1, 1])).tolist()
-        [[2.0, 0.6666666865348816], [5.0, 0.0]]
+        >>> [[round(v, 6) for v in row] for row in MomentReadout(moments=2)(x, torch.tensor([0, 0, 0, 1, 1])).tolist()]
+        [[2.0, 0.666667], [5.0, 0.0]]
     """
 
     def __init__(self, moments: int = 4, normalized: bool = True):
