@@ -46,6 +46,7 @@ from torch.autograd.function import once_differentiable
 from . import operators as _ops
 from .errors import GraphInputError
 from .graph import DirectedGraph, _as_index_tensor, _as_weight_tensor
+from .learned_charge import magnetic_product
 from .sparse import SparseOperator, csr_matrix, general_matmul
 
 __all__ = ["NodePartition", "partition_nodes", "GraphShard", "ShardedOperator", "LOCAL_BUILDERS"]
@@ -933,13 +934,13 @@ class GraphShard:
     def magnetic_product(self, charge: torch.Tensor, *, phase: str = "difference") -> Callable:
         r"""The map :math:`x \mapsto L_{norm}(q)\, x` on the owned rows at a tensor charge.
 
-        As :func:`phasorgraph.operators.magnetic_product` (values built once from ``charge``,
+        As :func:`phasorgraph.learned_charge.magnetic_product` (values built once from ``charge``,
         differentiable in q and x), with the halo rows of x exchanged first. The gradient of
         q on each rank is the part from its own rows; summed over ranks it is the gradient of
         the whole graph (DistributedDataParallel averages it like any other parameter).
         Collective in every call of the returned map.
         """
-        local_apply = _ops.magnetic_product(self.local_graph, charge, phase=phase)
+        local_apply = magnetic_product(self.local_graph, charge, phase=phase)
         n_own = self.num_rows
         plan = self._plan
 

@@ -111,8 +111,10 @@ def largest_eigenvalue(op: SparseOperator, *, tol: float = 1e-8, refresh: bool =
         if collective is None:
             raise GraphInputError(f"op holds {op.num_rows} of the {op.num_nodes} rows of its operator and "
                                   f"offers no collective_max_eigenvalue(); pass max_eigenvalue explicitly")
-        op.max_eigenvalue = float(collective(tol=tol))
-        return op.max_eigenvalue
+        value = float(collective(tol=tol))
+        if remember:
+            op.max_eigenvalue = value
+        return value
     n = op.num_rows
     if n == 0:
         if remember:
