@@ -1,10 +1,10 @@
-"""Dense NumPy references for the tests: every operator formula of DESIGN.md written once, densely.
+"""Dense NumPy references for the tests: every operator formula of src/phasorgraph/operators.py written once, densely.
 
 Everything here is built straight from the formulas with numpy, independent of
 phasorgraph.operators (only the graph's raw edges are read). Sources:
 
-* the symmetrized adjacency As = (A + A^T) / 2 and degrees d = As 1 (DESIGN.md);
-* zero degree: D^-1/2 and D^-1 of a zero degree are 0 (DESIGN.md);
+* the symmetrized adjacency As = (A + A^T) / 2 and degrees d = As 1 (src/phasorgraph/operators.py);
+* zero degree: D^-1/2 and D^-1 of a zero degree are 0 (src/phasorgraph/operators.py);
 * the magnetic adjacency H(q) = As * exp(i Theta), Theta = 2 pi q (A - A^T), 2 pi q sign(A - A^T)
   (Zhang et al. 2021; Shubin 1994) or 2 pi q (A - A^T) / (A + A^T) (the relative phase, as
   phasorgraph.operators documents it), normalized magnetic Laplacian I - D^-1/2 H D^-1/2;
@@ -30,7 +30,7 @@ def dense_adjacency(graph) -> np.ndarray:
 
 
 def inverse_root(d: np.ndarray, power: float = 0.5) -> np.ndarray:
-    """d^-power, 0 where d = 0 (DESIGN.md: isolated nodes never give NaN)."""
+    """d^-power, 0 where d = 0 (src/phasorgraph/operators.py: isolated nodes never give NaN)."""
     pos = d > 0
     return np.where(pos, 1.0 / np.where(pos, d, 1.0) ** power, 0.0)
 
@@ -91,7 +91,7 @@ def chebyshev_filter(L: np.ndarray, x: np.ndarray, W: np.ndarray, max_eigenvalue
 
 
 class DenseGraph:
-    """Every operator of DESIGN.md for one graph (a DirectedGraph or a dense adjacency), as dense numpy matrices."""
+    """Every operator of src/phasorgraph/operators.py for one graph (a DirectedGraph or a dense adjacency), as dense numpy matrices."""
 
     def __init__(self, graph):
         self.A = graph if isinstance(graph, np.ndarray) else dense_adjacency(graph)

@@ -15,7 +15,7 @@ tests/test_filters.py does (four lines).
 References used below (each also named beside its formula):
 
 * normalized / combinatorial Laplacian of As, renormalized adjacency (Kipf & Welling 2017) and
-  the normalized magnetic Laplacian (Zhang et al. 2021, as written in DESIGN.md), all built
+  the normalized magnetic Laplacian (Zhang et al. 2021, as written in src/phasorgraph/operators.py), all built
   densely in NumPy straight from the formulas, independent of phasorgraph.operators;
 * spectral filters evaluated with ``numpy.linalg.eigh`` and ``numpy.polynomial.chebyshev.chebval``
   on the eigenvalues, or ``numpy.interp`` for knot multipliers;

@@ -1,5 +1,5 @@
 """Catalogue of bad inputs: each raises GraphInputError (a ValueError) with a message that names
-the argument, what was wrong and what is accepted (DESIGN.md, "Errors").
+the argument, what was wrong and what is accepted (DEVELOPERS.md, Conventions: "Errors").
 
 One case per row; the table is the catalogue, so adding a case is adding a row.
 """

@@ -206,7 +206,7 @@ def test_directed_cycle_matches_networkx(n):
 
 @pytest.mark.parametrize("n,q", [(5, 0.1), (8, 0.25)])
 def test_directed_cycle_has_the_closed_form_magnetic_spectrum(n, q):
-    # closed form (DESIGN.md, Mathematics): eigenvalues 1 - cos(2 pi (k / n + q)), k = 0..n-1
+    # closed form (the directed_cycle docstring, src/phasorgraph/data/generators.py): eigenvalues 1 - cos(2 pi (k / n + q)), k = 0..n-1
     lam = np.linalg.eigvalsh(magnetic_laplacian(directed_cycle(n), q, dtype=torch.complex128).to_dense().numpy())
     expected = np.sort(1 - np.cos(2 * np.pi * (np.arange(n) / n + q)))
     np.testing.assert_allclose(lam, expected, atol=1e-12)

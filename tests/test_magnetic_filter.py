@@ -1,7 +1,7 @@
 """MagneticFilter: generic spec checks, the q = 0 reduction, charge maps, banks, caching, bad input.
 
 References: the dense normalized magnetic Laplacian I - D^-1/2 (As * exp(i 2 pi q (A - A^T)))
-D^-1/2 written in NumPy (Zhang et al. 2021; DESIGN.md) with numpy.linalg.eigh and
+D^-1/2 written in NumPy (Zhang et al. 2021; src/phasorgraph/operators.py) with numpy.linalg.eigh and
 numpy.polynomial.chebyshev.chebval on its eigenvalues (tests/layer_specs.py).
 """
 
@@ -42,7 +42,7 @@ def test_generic(spec, check):
 # ---------------------------------------------------------------------- reductions and identities
 @pytest.mark.parametrize("learn", [False, True])
 def test_charge_zero_equals_chebyshev_on_the_normalized_laplacian_of_As(learn):
-    # q = 0: the magnetic Laplacian is the normalized Laplacian of As (DESIGN.md), max_eigenvalue = 2
+    # q = 0: the magnetic Laplacian is the normalized Laplacian of As (src/phasorgraph/operators.py), max_eigenvalue = 2
     g, _ = reference_graph()
     torch.manual_seed(0)
     mag = MagneticFilter(3, 4, order=3, charge=0.0, dtype=torch.float64)
@@ -84,7 +84,7 @@ def test_bank_channel_groups_follow_the_documented_split():
 
 
 def test_reversing_every_edge_conjugates_the_output_for_real_inputs_and_weights():
-    # L(q) of the reversed graph is conj(L(q)) (DESIGN.md); real x, W, b then give conj(Y)
+    # L(q) of the reversed graph is conj(L(q)) (src/phasorgraph/operators.py); real x, W, b then give conj(Y)
     g, _ = reference_graph()
     layer = MagneticFilter(3, 4, order=3, charge=0.3, dtype=torch.float64)
     x = features(7, 3, torch.float64, False)

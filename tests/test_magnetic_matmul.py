@@ -4,7 +4,7 @@ References used (named again beside each check):
 * a dense numpy construction of the normalized magnetic Laplacian straight from the edge list,
   following the published formula L = I - D^-1/2 (A_s * exp(i Theta)) D^-1/2 with
   A_s = (A + A^T)/2 and Theta = 2 pi q (A - A^T) or 2 pi q sign(A - A^T) (Zhang et al.,
-  NeurIPS 2021; zero degrees give D^-1/2 = 0 as in DESIGN.md);
+  NeurIPS 2021; zero degrees give D^-1/2 = 0 as in src/phasorgraph/operators.py);
 * a central finite difference in the charge, computed in float64 on a 200-node generated graph;
 * torch.autograd.gradcheck (finite differences in float64) in the charge and x together.
 """
@@ -136,7 +136,7 @@ def test_empty_and_isolated():
     lonely = DirectedGraph.from_edges([[], []], num_nodes=3)
     x = _features((3, 2), True)
     y = magnetic_matmul(lonely, torch.tensor(0.1, dtype=torch.float64), x)
-    torch.testing.assert_close(y, x)  # no edges: L = I (zero degrees give D^-1/2 = 0, DESIGN.md)
+    torch.testing.assert_close(y, x)  # no edges: L = I (zero degrees give D^-1/2 = 0, src/phasorgraph/operators.py)
 
 
 def test_bad_input_messages():

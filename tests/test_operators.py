@@ -1,7 +1,7 @@
 """Operator constructions: properties, brute-force dense references and outside references.
 
 Sources named beside each check:
-* DESIGN.md formulas (the dense numpy reference ``_ref`` below is written straight from them);
+* the formulas of src/phasorgraph/operators.py (module conventions and builder docstrings) (the dense numpy reference ``_ref`` below is written straight from them);
 * networkx ``laplacian_matrix``, ``normalized_laplacian_matrix``, ``directed_laplacian_matrix``;
 * ``scipy.sparse.csgraph.laplacian``;
 * ``numpy.linalg.eigh`` / ``eigvalsh`` / ``eigvals``;
@@ -50,7 +50,7 @@ TOL = dict(rtol=1e-10, atol=1e-10)
 
 
 # ---------------------------------------------------------------------- dense reference
-# every DESIGN.md formula written densely once, in tests/dense.py
+# every formula of src/phasorgraph/operators.py written densely once, in tests/dense.py
 _dense_A = dense_adjacency
 _ref = DenseGraph
 
@@ -89,7 +89,7 @@ def _magnetic_operators(g, q):
 # ---------------------------------------------------------------------- brute-force references
 @given(directed_graphs(), charges())
 def test_magnetic_operators_match_dense_formulas(g, q):
-    # source: DESIGN.md formulas, written densely in numpy (class _ref)
+    # source: the formulas of src/phasorgraph/operators.py, written densely in numpy (class _ref)
     r = _ref(g)
     ops = _magnetic_operators(g, q)
     np.testing.assert_allclose(_dense(ops["H_diff"]), r.H(q), **TOL)
@@ -102,7 +102,7 @@ def test_magnetic_operators_match_dense_formulas(g, q):
 
 @given(directed_graphs())
 def test_real_operators_match_dense_formulas(g):
-    # source: DESIGN.md formulas, written densely in numpy (class _ref)
+    # source: the formulas of src/phasorgraph/operators.py, written densely in numpy (class _ref)
     r = _ref(g)
     ops = _real_operators(g)
     np.testing.assert_allclose(_dense(ops["combinatorial"]), r.comb(), **TOL)
@@ -128,7 +128,7 @@ def test_hermitian_flag_is_true(g, q):
 
 @given(directed_graphs(), charges())
 def test_laplacians_are_psd_and_normalized_spectra_in_0_2(g, q):
-    # numpy.linalg.eigvalsh; bounds from DESIGN.md (PSD; normalized spectrum in [0, 2])
+    # numpy.linalg.eigvalsh; bounds from the builders' docstrings (src/phasorgraph/operators.py) (PSD; normalized spectrum in [0, 2])
     ops = {**_real_operators(g), **_magnetic_operators(g, q)}
     for name in ["combinatorial", "normalized", "pagerank", "L_norm_diff", "L_norm_sign", "L_diff"]:
         if name not in ops:
@@ -144,7 +144,7 @@ def test_laplacians_are_psd_and_normalized_spectra_in_0_2(g, q):
 
 @given(directed_graphs())
 def test_charge_zero_is_laplacian_of_symmetrized_graph(g):
-    # DESIGN.md: q = 0 gives the Laplacian of As; As is also built independently as g.symmetrized()
+    # src/phasorgraph/operators.py: q = 0 gives the Laplacian of As; As is also built independently as g.symmetrized()
     for ref in (normalized_laplacian(g, dtype=F64), normalized_laplacian(g.symmetrized(), dtype=F64)):
         np.testing.assert_allclose(_dense(magnetic_laplacian(g, 0.0, dtype=C128)), _dense(ref), **TOL)
     np.testing.assert_allclose(_dense(magnetic_laplacian(g, 0.0, normalized=False, dtype=C128)),
@@ -153,7 +153,7 @@ def test_charge_zero_is_laplacian_of_symmetrized_graph(g):
 
 @given(directed_graphs(), charges())
 def test_reversing_every_edge_conjugates(g, q):
-    # DESIGN.md: reversing every edge conjugates H (A - A^T changes sign)
+    # src/phasorgraph/operators.py: reversing every edge conjugates H (A - A^T changes sign)
     rev = g.reverse()
     for phase in ("difference", "sign"):
         np.testing.assert_allclose(_dense(magnetic_adjacency(rev, q, phase=phase, dtype=C128)),
@@ -179,7 +179,7 @@ def test_permuting_nodes_permutes_every_operator(gp, q):
 
 @given(directed_graphs())
 def test_random_walk_is_column_stochastic_on_nodes_with_edges(g):
-    # DESIGN.md: P = (I + As D^-1)/2 spreads the mass at u over its neighbours (columns sum to 1)
+    # src/phasorgraph/operators.py: P = (I + As D^-1)/2 spreads the mass at u over its neighbours (columns sum to 1)
     r = _ref(g)
     pos = r.d > 0
     for lazy in (True, False):
@@ -190,7 +190,7 @@ def test_random_walk_is_column_stochastic_on_nodes_with_edges(g):
 
 @given(directed_graphs())
 def test_symmetric_diffusion_is_similar_to_random_walk(g):
-    # DESIGN.md: T = D^-1/2 P D^1/2 (on the nodes of positive degree)
+    # src/phasorgraph/operators.py: T = D^-1/2 P D^1/2 (on the nodes of positive degree)
     r = _ref(g)
     pos = r.d > 0
     P = _dense(random_walk(g, dtype=F64))
@@ -201,7 +201,7 @@ def test_symmetric_diffusion_is_similar_to_random_walk(g):
 
 @given(directed_graphs(), charges())
 def test_diffusion_spectra_in_0_1(g, q):
-    # numpy.linalg.eigvalsh; DESIGN.md: T and T(q) have spectra in [0, 1]
+    # numpy.linalg.eigvalsh; src/phasorgraph/operators.py: T and T(q) have spectra in [0, 1]
     for op in (diffusion(g, dtype=F64), diffusion(g, q, dtype=C128)):
         assert op.spectrum == (0.0, 1.0)
         lam = np.linalg.eigvalsh(_dense(op))
@@ -463,7 +463,7 @@ def test_sparse_operator_pickle_round_trip(small_graph):
 
 @pytest.mark.parametrize("num_nodes", [0, 1, 4])
 def test_empty_and_edgeless_graphs_give_no_nan(num_nodes):
-    # isolated nodes: every D^-1/2 or D^-1 of a zero degree is 0 (DESIGN.md), so no NaN
+    # isolated nodes: every D^-1/2 or D^-1 of a zero degree is 0 (src/phasorgraph/operators.py), so no NaN
     g = DirectedGraph.from_edges(np.zeros((2, 0), dtype=np.int64), num_nodes=num_nodes)
     ops = {**_real_operators(g), **_magnetic_operators(g, 0.25)}
     ops.update({f"prox_{i}": op for i, op in enumerate(proximity_operators(g, dtype=F64))})

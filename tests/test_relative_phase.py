@@ -1,6 +1,6 @@
 """phase="relative" in every magnetic builder, and the PhaseWrapWarning of the default phase.
 
-References: the magnetic Laplacian as defined in DESIGN.md (Shubin, Comm. Math. Phys. 1994;
+References: the magnetic Laplacian as defined in src/phasorgraph/operators.py (Shubin, Comm. Math. Phys. 1994;
 Zhang et al., NeurIPS 2021) with the phase Theta = 2 pi q (A - A^T) / (A + A^T), written
 densely in numpy below; ``numpy.linalg.eigvalsh`` for the spectra; closed forms for one-way
 unit edges.

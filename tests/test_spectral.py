@@ -1,7 +1,7 @@
 """Spectral tools against numpy.linalg and closed forms.
 
 References: ``numpy.linalg.eigvalsh`` / ``eigh`` / ``eigvals``; the diffusion-wavelet frame
-bounds of DESIGN.md (Coifman & Maggioni 2006; Gama et al. 2019): the bank
+bounds of the DiffusionWavelets docstring, src/phasorgraph/nn/wavelets.py (Coifman & Maggioni 2006; Gama et al. 2019): the bank
 Psi_0 = I - T, Psi_j = T^(2^(j-1)) - T^(2^j), Phi_J = T^(2^J) has bounds in [1 / (J + 2), 1];
 the Dirichlet energy as a sum over edges (a dense formula written here).
 """
@@ -151,7 +151,7 @@ def test_fourier_basis_refuses_large_graphs_with_a_clear_message():
 
 # ---------------------------------------------------------------------- frame bounds
 def _wavelet_bank(T: np.ndarray, J: int):
-    """Dense diffusion wavelets from DESIGN.md: Psi_0 = I - T, Psi_j = T^(2^(j-1)) - T^(2^j), Phi_J."""
+    """Dense diffusion wavelets (DiffusionWavelets docstring, src/phasorgraph/nn/wavelets.py): Psi_0 = I - T, Psi_j = T^(2^(j-1)) - T^(2^j), Phi_J."""
     n = T.shape[0]
     powers = {0: np.eye(n, dtype=T.dtype), 1: T}
     for j in range(1, J + 1):
@@ -162,7 +162,7 @@ def _wavelet_bank(T: np.ndarray, J: int):
 
 @given(directed_graphs(min_nodes=1), charges())
 def test_frame_bounds_of_diffusion_wavelets(g, q):
-    # DESIGN.md bound: sum_j ||Psi_j x||^2 + ||Phi_J x||^2 in [||x||^2 / (J + 2), ||x||^2];
+    # the bound of the DiffusionWavelets docstring: sum_j ||Psi_j x||^2 + ||Phi_J x||^2 in [||x||^2 / (J + 2), ||x||^2];
     # the bounds are the extreme eigenvalues of sum_j F_j^H F_j (numpy.linalg.eigvalsh)
     J = 3
     for T in (diffusion(g, dtype=F64).to_dense().numpy(), diffusion(g, q, dtype=C128).to_dense().numpy()):
@@ -179,7 +179,7 @@ def test_frame_bounds_of_diffusion_wavelets(g, q):
 
 
 def test_frame_bounds_of_random_walk_wavelets_in_the_degree_norm():
-    # DESIGN.md: for P the bounds hold in the norm ||D^-1/2 x||; with F_j = D^-1/2 Psi_j(P) and
+    # DiffusionWavelets docstring: for P the bounds hold in the norm ||D^-1/2 x||; with F_j = D^-1/2 Psi_j(P) and
     # weight d^-1/2 they equal the bounds of the symmetric bank (Psi_j(P) = D^1/2 Psi_j(T) D^-1/2)
     g = _random_graph(12, 40, 5).symmetrized()
     d = np.asarray(g.to_scipy().sum(axis=1)).ravel()
