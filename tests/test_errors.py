@@ -315,6 +315,17 @@ CASES = [
      r"x dtype must be float32, float64, complex64 or complex128; got torch\.int64 \(convert integer features"),
     ("integer parameter dtype for ScaleSelector", lambda: ScaleSelector(4, 2, dtype=torch.int64),
      r"dtype must be torch\.float32 or torch\.float64 \(or complex64/complex128 for that precision\); got torch\.int64"),
+    # --- SparseOperator facts (ChebyshevFilter reads spectrum[0]: it must never come from text)
+    ("operator spectrum given as text", lambda: SparseOperator(normalized_laplacian(_g()).matrix, hermitian=True, spectrum="02"),
+     r"spectrum must be None or a pair \(low, high\) of finite numbers with low <= high holding every eigenvalue; got '02'"),
+    ("operator spectrum reversed", lambda: SparseOperator(normalized_laplacian(_g()).matrix, hermitian=True, spectrum=(2.0, 0.0)),
+     r"spectrum must be None or a pair .*; got \(2\.0, 0\.0\)"),
+    ("operator hermitian flag as text", lambda: SparseOperator(normalized_laplacian(_g()).matrix, hermitian="no"),
+     r"hermitian must be True or False; got 'no'"),
+    ("operator kind not a string", lambda: SparseOperator(normalized_laplacian(_g()).matrix, hermitian=True, kind=3),
+     r"kind must be a string naming the operator; got 3"),
+    ("operator moved to an unknown device", lambda: normalized_laplacian(_g()).to(device="1"),
+     r"device '1' is not a device available here"),
     # --- layers: found by the harness
     ("bias flag as text", lambda: ChebyshevFilter(2, 2, order=1, bias="False"), r"bias must be True or False; got 'False'"),
     ("complex_weights flag as a number", lambda: MagneticFilter(2, 2, order=1, charge=0.1, complex_weights=1),

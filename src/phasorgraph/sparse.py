@@ -44,7 +44,8 @@ import numpy as np
 import torch
 from torch import Tensor
 
-from .errors import GraphInputError
+from ._checks import check_flag
+from .errors import GraphInputError, _value_text
 
 __all__ = [
     "SparseOperator",
@@ -185,6 +186,30 @@ def _check_scalar(name: str, value) -> float:
     return float(value)
 
 
+def _check_spectrum(spectrum) -> Optional[tuple]:
+    """None, or a pair (low, high) of finite numbers with low <= high (never read from text)."""
+    if spectrum is None:
+        return None
+    ok = isinstance(spectrum, (tuple, list)) and len(spectrum) == 2 and all(
+        isinstance(v, numbers.Real) and not isinstance(v, bool) and math.isfinite(float(v)) for v in spectrum)
+    if not ok or float(spectrum[0]) > float(spectrum[1]):
+        raise GraphInputError(
+            f"spectrum must be None or a pair (low, high) of finite numbers with low <= high holding every "
+            f"eigenvalue; got {_value_text(spectrum)}"
+        )
+    return float(spectrum[0]), float(spectrum[1])
+
+
+def _check_device(device) -> torch.device:
+    """``torch.device(device)`` for an available device, else GraphInputError naming it."""
+    try:
+        parsed = torch.device(device)
+        torch.empty(0, device=parsed)  # raises if that device is not available here
+    except (RuntimeError, TypeError, AssertionError, ValueError) as exc:
+        raise GraphInputError(f"device {_value_text(device)} is not a device available here ({exc})") from None
+    return parsed
+
+
 class SparseOperator:
     r"""A square sparse linear operator: a torch CSR matrix and what is known about it.
 
@@ -246,9 +271,14 @@ class SparseOperator:
                 raise GraphInputError(f"low_rank must be two (N, r) tensors with N = {n}; got {tuple(U.shape)} and {tuple(V.shape)}")
             low_rank = (U.to(matrix.dtype), V.to(matrix.dtype))
         self.matrix = matrix
-        self.hermitian = bool(hermitian)
-        self.spectrum = None if spectrum is None else (float(spectrum[0]), float(spectrum[1]))
+        self.hermitian = check_flag("hermitian", hermitian)
+        self.spectrum = _check_spectrum(spectrum)
+        if not isinstance(kind, str):
+            raise GraphInputError(f"kind must be a string naming the operator; got {_value_text(kind)}")
         self.kind = kind
+        if max_eigenvalue is not None and (isinstance(max_eigenvalue, bool) or not isinstance(max_eigenvalue, numbers.Real)
+                                           or not math.isfinite(float(max_eigenvalue))):
+            raise GraphInputError(f"max_eigenvalue must be None or a finite number; got {_value_text(max_eigenvalue)}")
         self.low_rank = low_rank
         self.similar = similar
         self.max_eigenvalue = max_eigenvalue
@@ -395,7 +425,7 @@ class SparseOperator:
                 f"use {_COMPLEX_OF[dtype]} instead"
             )
         m = self.matrix
-        device = m.device if device is None else torch.device(device)
+        device = m.device if device is None else _check_device(device)
         matrix = csr_matrix(m.crow_indices().to(device), m.col_indices().to(device),
                             m.values().to(device=device, dtype=dtype), m.shape)
         low_rank = None

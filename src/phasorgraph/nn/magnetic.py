@@ -193,7 +193,9 @@ class MagneticFilter(ChebyshevBase):
         out_channels: C_out (a multiple of the number of charges).
         order: K >= 0, the polynomial degree (K + 1 weight matrices).
         charge: keyword-only, required: q in [0, 0.5], a list of them, or a
-            :class:`LearnedCharge`.
+            :class:`LearnedCharge`. A tensor without grad is read as its numbers; a tensor that
+            requires grad is refused (it would be detached and stay fixed in silence: learn the
+            charge with :class:`LearnedCharge`), the same rule as the operator builders.
         bias: learn an additive bias (default True).
         complex_weights: fully complex W_k and bias (default False: real weights act on the real
             and imaginary parts alike; a real bias adds to the real part).
