@@ -29,6 +29,8 @@ from phasorgraph.data import GraphBatch, directed_block_model, directed_cycle, i
 from phasorgraph.nn import (BandMix, ChebyshevFilter, ComplexToReal, DiffusionScattering, DiffusionWavelets, LearnedCharge,
                              MagneticFilter, ModReLU, MomentReadout, RenormalizedFilter, ScaleSelector, SpectralMultiplier)
 from phasorgraph._groups import group_count, group_mean, group_sum
+from phasorgraph.responses import filter_response
+from phasorgraph.tables import graph_from_table, node_features
 from phasorgraph.spectral import dirichlet_energy, fourier_basis, frame_bounds, largest_eigenvalue
 
 
@@ -326,6 +328,19 @@ CASES = [
      r"kind must be a string naming the operator; got 3"),
     ("operator moved to an unknown device", lambda: normalized_laplacian(_g()).to(device="1"),
      r"device '1' is not a device available here"),
+    ("operator cast to a dtype given as an array", lambda: normalized_laplacian(_g()).to(np.ones(2)),
+     r"dtype must be one of .*; got \[1\. 1\.\]"),
+    # --- tables and filter responses (found by the harness)
+    ("table column name given as an array",
+     lambda: graph_from_table({"s": [0, 1], "t": [1, 2]}, source=np.array(["s"]), target="t"),
+     r"source must be a column name \(a string or other hashable key\); got ndarray"),
+    ("node table without an id column name", lambda: node_features(_g(), {"id": [0, 1, 2], "f": [1.0, 2.0, 3.0]}, id=None),
+     r"id must be a column name; got None"),
+    ("node feature columns given as a number", lambda: node_features(_g(), {"id": [0, 1, 2], "f": [1.0, 2.0, 3.0]}, columns=3),
+     r"columns must be None, a column name or a list of column names; got int 3"),
+    ("astronomically many response points", lambda: filter_response(ChebyshevFilter(1, 1, order=2), points=2 ** 40,
+                                                                      max_eigenvalue=2.0),
+     r"points must be an integer >= 2 and <= 1048576 or a 1-D sequence of eigenvalues; got 1099511627776"),
     # --- layers: found by the harness
     ("bias flag as text", lambda: ChebyshevFilter(2, 2, order=1, bias="False"), r"bias must be True or False; got 'False'"),
     ("complex_weights flag as a number", lambda: MagneticFilter(2, 2, order=1, charge=0.1, complex_weights=1),

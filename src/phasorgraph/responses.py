@@ -66,6 +66,10 @@ def _weights(layer) -> torch.Tensor:
     return w  # (K + 1, C_in, C_out)
 
 
+#: the most evenly spaced evaluation points (a bound so a typo such as 2**40 is refused, not allocated)
+_MAX_POINTS = 2 ** 20
+
+
 def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float] = None) -> FilterResponse:
     r"""The gain matrices :math:`G(\lambda) = \sum_k T_k(\tilde\lambda) W_k` of a trained filter.
 
@@ -118,10 +122,13 @@ def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float]
             f"layer must be a ChebyshevFilter or a MagneticFilter; got {type(layer).__name__}"
         )
     if isinstance(points, numbers.Integral) and not isinstance(points, bool):
-        if points < 2:
-            raise GraphInputError(f"points must be an integer >= 2 or a 1-D sequence of eigenvalues; got {points}")
+        if not 2 <= points <= _MAX_POINTS:
+            raise GraphInputError(f"points must be an integer >= 2 and <= {_MAX_POINTS} or a 1-D sequence of "
+                                  f"eigenvalues; got {points}")
         lam_values = torch.linspace(low, high, int(points), dtype=torch.float64)
     else:
+        if isinstance(points, torch.Tensor) and points.device.type == "meta":
+            raise GraphInputError("points is on the meta device, which holds shapes but no values; pass eigenvalues")
         try:
             lam_values = torch.as_tensor(points, dtype=torch.float64).reshape(-1) if not isinstance(points, torch.Tensor) \
                 else points.detach().to(torch.float64).reshape(-1)

@@ -417,7 +417,7 @@ class SparseOperator:
     def to(self, dtype: Optional[torch.dtype] = None, device=None) -> "SparseOperator":
         """A copy with another dtype and/or device. Casting complex to real is refused."""
         dtype = self.dtype if dtype is None else dtype
-        if dtype not in _SUPPORTED:
+        if not isinstance(dtype, torch.dtype) or dtype not in _SUPPORTED:
             raise GraphInputError(f"dtype must be one of {_SUPPORTED}; got {dtype}")
         if self.is_complex and not dtype.is_complex:
             raise GraphInputError(

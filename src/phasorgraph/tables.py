@@ -175,11 +175,24 @@ def _to_numpy(col) -> np.ndarray:
     return arr
 
 
+def _check_column_name(role: str, column) -> None:
+    """A column name is a string or another hashable key (an array or list is refused, not compared)."""
+    try:
+        hash(column)
+    except TypeError:
+        raise GraphInputError(
+            f"{role} must be a column name (a string or other hashable key); got {type(column).__name__} "
+            f"{str(column)[:60]}"
+        ) from None
+
+
 def _read_columns(table: Any, roles: Mapping[str, Any]) -> tuple[dict, int]:
     """The columns named in ``roles`` ({role: column name}) as numpy arrays, and the row count.
 
     Raises GraphInputError naming the role and the column when a column is absent.
     """
+    for role, column in roles.items():
+        _check_column_name(role, column)
     source = table
     table, names = _open(table, [c for c in roles.values() if c is not None])
     out = {}
@@ -538,6 +551,9 @@ def _node_rows(graph, table, id, roles, skip_unknown):
         raise GraphInputError(f"graph must be a DirectedGraph; got {type(graph).__name__}")
     if not isinstance(skip_unknown, bool):
         raise GraphInputError(f"skip_unknown must be True or False; got {skip_unknown!r}")
+    for role, column in {"id": id, **roles}.items():
+        if column is None:  # _read_columns skips None (an optional weight); these are required
+            raise GraphInputError(f"{role} must be a column name; got None")
     cols, rows = _read_columns(table, {"id": id, **roles})
     ids = _check_ids("id", id, cols[id])
     pos = _positions(graph, f"id column {id!r}", ids, allow_unknown=skip_unknown)
@@ -590,6 +606,9 @@ def node_features(graph, table: Any, id: str = "id", columns: Optional[Sequence[
         columns = [c for c in names if c != id]
     elif isinstance(columns, str):
         columns = [columns]
+    if not isinstance(columns, (list, tuple)):
+        raise GraphInputError(f"columns must be None, a column name or a list of column names; got "
+                              f"{type(columns).__name__} {str(columns)[:60]}")
     columns = list(columns)
     roles = {f"columns[{i}]": c for i, c in enumerate(columns)}
     cols, pos, keep = _node_rows(graph, table, id, roles, skip_unknown)
