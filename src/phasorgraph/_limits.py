@@ -15,12 +15,21 @@ from .errors import GraphInputError
 __all__ = ["check_node_count", "physical_memory"]
 
 
-def physical_memory() -> int:
-    """Bytes of physical memory of this machine (``os.sysconf``), or 2**40 if it cannot be read."""
+def _read_physical_memory() -> int:
     try:
         return int(os.sysconf("SC_PAGE_SIZE")) * int(os.sysconf("SC_PHYS_PAGES"))
     except (AttributeError, ValueError, OSError):  # pragma: no cover - non-POSIX
         return 2 ** 40
+
+
+# read once at import: a constant is also what torch.compile can trace through (os.sysconf is
+# a C builtin it cannot, so calling it on every forward broke the compiled graph)
+_PHYSICAL_MEMORY = _read_physical_memory()
+
+
+def physical_memory() -> int:
+    """Bytes of physical memory of this machine (``os.sysconf``, read once), or 2**40 if it cannot be read."""
+    return _PHYSICAL_MEMORY
 
 
 def _gib(nbytes: float) -> str:

@@ -295,6 +295,16 @@ def _torch_matrix_to_scipy(matrix: torch.Tensor):
     return sp.coo_matrix((vals.resolve_conj().numpy(), (idx[0], idx[1])), shape=tuple(m.shape))
 
 
+@torch.compiler.disable
+def _build_cached(graph, builder, options):
+    """``builder(graph, **options)``, run eagerly even inside torch.compile.
+
+    (What graphs cache is numpy/scipy work on constants; inside a compiled forward it costs
+    one graph break, on the first call only: later calls find it cached.)
+    """
+    return builder(graph, **options)
+
+
 class DirectedGraph:
     r"""A directed weighted graph on nodes ``0 .. num_nodes - 1``, stored as canonical edges.
 
@@ -538,7 +548,7 @@ class DirectedGraph:
         key = (builder, _options_key(options, "graph.cached"))
         hit = self._cache.get(key)
         if hit is None:
-            hit = builder(self, **options)
+            hit = _build_cached(self, builder, options)
             self._cache[key] = hit
         return hit
 

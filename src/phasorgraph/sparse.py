@@ -181,7 +181,8 @@ def _split_values(values: Tensor) -> tuple:
 
 
 def _check_scalar(name: str, value) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real) or not math.isfinite(float(value)):
+    # (comparisons rather than math.isfinite, which torch.compile cannot trace on constants)
+    if isinstance(value, bool) or not isinstance(value, numbers.Real) or not -math.inf < float(value) < math.inf:
         raise GraphInputError(f"{name} must be a finite real number; got {value!r}")
     return float(value)
 
@@ -288,6 +289,7 @@ class SparseOperator:
     def _prepare(self, transpose: Optional[tuple] = None) -> None:
         """The product-ready parts: int64 indices, real value arrays, the transposed pattern."""
         m = self.matrix
+        self._n, self._dtype, self._device = int(m.shape[0]), m.dtype, m.device
         self._crow = m.crow_indices().to(torch.int64).contiguous()
         self._col = m.col_indices().to(torch.int64).contiguous()
         vre, vim = _split_values(m.values().detach())
@@ -300,31 +302,33 @@ class SparseOperator:
         self._t_crow, self._t_col, self._t_perm = transpose
 
     # ------------------------------------------------------------------ facts
+    # (plain Python values kept at construction: reading them never touches the sparse matrix,
+    # which torch.compile cannot trace)
     @property
     def shape(self) -> torch.Size:
-        return self.matrix.shape
+        return torch.Size((self._n, self._n))
 
     @property
     def num_rows(self) -> int:
         """Rows of the features this operator multiplies (all of them for a whole operator)."""
-        return int(self.matrix.shape[0])
+        return self._n
 
     @property
     def num_nodes(self) -> int:
         """Nodes of the whole graph: ``num_rows`` here (an operator on a shard holds fewer rows)."""
-        return int(self.matrix.shape[0])
+        return self._n
 
     @property
     def dtype(self) -> torch.dtype:
-        return self.matrix.dtype
+        return self._dtype
 
     @property
     def device(self) -> torch.device:
-        return self.matrix.device
+        return self._device
 
     @property
     def is_complex(self) -> bool:
-        return self.matrix.dtype.is_complex
+        return self._vim is not None
 
     @property
     def nnz(self) -> int:
@@ -335,7 +339,7 @@ class SparseOperator:
         return (f"SparseOperator(kind={self.kind!r}, shape={tuple(self.shape)}, nnz={self.nnz}, "
                 f"dtype={self.dtype}, hermitian={self.hermitian}, spectrum={self.spectrum}{extra})")
 
-    _DERIVED = ("_crow", "_col", "_vre", "_vim", "_t_crow", "_t_col", "_t_perm", "_kernel")
+    _DERIVED = ("_crow", "_col", "_vre", "_vim", "_t_crow", "_t_col", "_t_perm", "_kernel", "_n", "_dtype", "_device")
 
     def __getstate__(self):
         m = self.matrix

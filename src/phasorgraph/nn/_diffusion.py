@@ -82,7 +82,7 @@ def diffusion_powers(T: SparseOperator, scale: Optional[torch.Tensor], x2d: torc
     k = 0
     for target in wanted:
         while k < target:
-            y = T @ y
+            y = T.matmul(y)  # the method, not @: torch.compile cannot trace @ on an operator object
             k += 1
         found[target] = y
     return [_scaled(found[int(k)], scale, inverse=False) for k in steps]
