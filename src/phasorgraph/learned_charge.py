@@ -76,7 +76,9 @@ def magnetic_product(graph: DirectedGraph, charge: torch.Tensor, *, phase: str =
     real = charge.dtype
     if real not in _REAL:
         raise GraphInputError(f"charge must be float32 or float64; got {real}")
-    if charge.device.type != "meta":  # a meta tensor holds no value to check
+    # a meta tensor holds no value to check; compiled code skips the check too (reading the
+    # charge's value there would break the graph on every forward): an eager call warns
+    if charge.device.type != "meta" and not torch.compiler.is_compiling():
         warn_if_wrapped(graph, abs(float(charge.detach())), phase)
     crow, cols, magnitude, base = graph.cached(_pattern, phase=phase, dtype=real, device=str(charge.device))
     # the non-zeros of D^-1/2 H(q) D^-1/2 as two real arrays (what the kernels read), by the

@@ -303,36 +303,41 @@ class SparseOperator:
 
     # ------------------------------------------------------------------ facts
     # (plain Python values kept at construction: reading them never touches the sparse matrix,
-    # which torch.compile cannot trace)
+    # which torch.compile cannot trace; a subclass that sets only ``matrix`` gets them from it)
     @property
     def shape(self) -> torch.Size:
-        return torch.Size((self._n, self._n))
+        n = self.num_rows
+        return torch.Size((n, n))
 
     @property
     def num_rows(self) -> int:
         """Rows of the features this operator multiplies (all of them for a whole operator)."""
-        return self._n
+        n = getattr(self, "_n", None)
+        return int(self.matrix.shape[0]) if n is None else n
 
     @property
     def num_nodes(self) -> int:
         """Nodes of the whole graph: ``num_rows`` here (an operator on a shard holds fewer rows)."""
-        return self._n
+        return self.num_rows
 
     @property
     def dtype(self) -> torch.dtype:
-        return self._dtype
+        d = getattr(self, "_dtype", None)
+        return self.matrix.dtype if d is None else d
 
     @property
     def device(self) -> torch.device:
-        return self._device
+        d = getattr(self, "_device", None)
+        return self.matrix.device if d is None else d
 
     @property
     def is_complex(self) -> bool:
-        return self._vim is not None
+        return self.dtype.is_complex
 
     @property
     def nnz(self) -> int:
-        return int(self._col.numel())
+        col = getattr(self, "_col", None)
+        return int(self.matrix.values().numel() if col is None else col.numel())
 
     def __repr__(self) -> str:
         extra = f", low_rank={self.low_rank[0].shape[1]}" if self.low_rank is not None else ""
