@@ -45,7 +45,7 @@ from torch.autograd.function import once_differentiable
 
 from . import operators as _ops
 from .errors import GraphInputError
-from .graph import DirectedGraph, _as_index_tensor, _as_weight_tensor
+from .graph import DirectedGraph, as_index_tensor, as_weight_tensor
 from .learned_charge import magnetic_product
 from .sparse import SparseOperator, csr_matrix, general_matmul
 
@@ -224,7 +224,7 @@ def _check_parts(num_parts) -> int:
 
 def _check_owner(owner, num_nodes: int, num_parts: Optional[int]) -> tuple:
     """Validate an owner array: one integer part id in [0, num_parts) per node."""
-    o = _as_index_tensor("owner", owner)
+    o = as_index_tensor("owner", owner)
     if o.numel() != num_nodes:
         raise GraphInputError(f"owner must have one entry per node (length {num_nodes}); got length {o.numel()}")
     if num_parts is None:
@@ -775,11 +775,11 @@ class GraphShard:
                 raise GraphInputError(f"num_nodes must be an integer >= 0; got {num_nodes!r}")
             n = int(num_nodes)
             partition = _check_partition(partition, n, world)
-            src = _as_index_tensor("source", source)
-            dst = _as_index_tensor("target", target)
+            src = as_index_tensor("source", source)
+            dst = as_index_tensor("target", target)
             if src.numel() != dst.numel():
                 raise GraphInputError(f"source and target must have the same length; got {src.numel()} and {dst.numel()}")
-            w = _as_weight_tensor(weight, src.numel())
+            w = as_weight_tensor(weight, src.numel())
             for name, ids in (("source", src), ("target", dst)):
                 if ids.numel() and (int(ids.min()) < 0 or int(ids.max()) >= n):
                     bad = int(ids.min()) if int(ids.min()) < 0 else int(ids.max())

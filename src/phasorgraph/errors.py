@@ -12,7 +12,7 @@ class GraphInputError(ValueError):
     """
 
 
-def _value_text(value, limit: int = 80) -> str:
+def value_text(value, limit: int = 80) -> str:
     """``repr(value)`` shortened to ``limit`` characters: how messages show the value given."""
     text = repr(value)
     return text if len(text) <= limit else text[:limit - 3] + "..."

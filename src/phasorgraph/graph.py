@@ -10,7 +10,7 @@ import scipy.sparse as sp
 import torch
 
 from ._limits import check_node_count
-from .errors import GraphInputError, _value_text
+from .errors import GraphInputError, value_text
 
 __all__ = ["DirectedGraph", "GraphStructure"]
 
@@ -41,7 +41,7 @@ def _as_array(name: str, value: Any, what: str) -> np.ndarray:
     except (ValueError, TypeError, OverflowError) as exc:
         raise GraphInputError(
             f"{name} must be {what}; got a {type(value).__name__} that numpy cannot read as one "
-            f"array (rows of different lengths?): {_value_text(value)}"
+            f"array (rows of different lengths?): {value_text(value)}"
         ) from exc
 
 
@@ -58,7 +58,7 @@ def _is_node_id(v: Any) -> bool:
     return isinstance(v, numbers.Integral) and not isinstance(v, (bool, np.bool_)) and 0 <= int(v) < _ID_LIMIT
 
 
-def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
+def as_index_tensor(name: str, value: Any) -> torch.Tensor:
     """Turn a 1-D array-like of node ids into an int64 CPU tensor, rejecting non-integers.
 
     Ids must be integers in [0, 2**63) (int64); floats are accepted when they hold integers.
@@ -85,7 +85,7 @@ def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
         k, v = _first_bad_object(arr, _is_node_id)
         if k >= 0:
             raise GraphInputError(
-                f"{name} must hold integer node ids in [0, 2**63); got {_value_text(v)} at position {k}"
+                f"{name} must hold integer node ids in [0, 2**63); got {value_text(v)} at position {k}"
             )
         arr = arr.astype(np.int64)
     if arr.dtype.kind not in "iuf" and arr.size > 0:
@@ -114,7 +114,7 @@ def _as_index_tensor(name: str, value: Any) -> torch.Tensor:
     return torch.as_tensor(arr.astype(np.int64, copy=False)).contiguous()
 
 
-def _as_weight_tensor(value: Any, num_edges: int) -> torch.Tensor:
+def as_weight_tensor(value: Any, num_edges: int) -> torch.Tensor:
     if value is None:
         return torch.ones(num_edges, dtype=torch.float64)
     if isinstance(value, torch.Tensor):
@@ -128,7 +128,7 @@ def _as_weight_tensor(value: Any, num_edges: int) -> torch.Tensor:
             k, v = _first_bad_object(
                 arr, lambda v: isinstance(v, numbers.Real) and not isinstance(v, (bool, np.bool_)))
             raise GraphInputError(
-                f"weight must hold real numbers, one per edge; got {_value_text(v)} at position {k}"
+                f"weight must hold real numbers, one per edge; got {value_text(v)} at position {k}"
             )
         if arr.dtype.kind == "c":
             raise GraphInputError(f"weight must be real; got an array of dtype {arr.dtype}")
@@ -151,9 +151,9 @@ def _check_node_names(names: Any, num_nodes: int):
     """None, or a read-only 1-D numpy array of num_nodes distinct ids (delegates to tables)."""
     if names is None:
         return None
-    from .tables import _as_node_names
+    from .tables import as_node_names
 
-    return _as_node_names("node_names", names, num_nodes)
+    return as_node_names("node_names", names, num_nodes)
 
 
 def _same_names(a, b) -> bool:
@@ -348,13 +348,13 @@ class DirectedGraph:
 
     def __init__(self, source: Any, target: Any, weight: Any = None, num_nodes: int | None = None, *,
                  node_names: Any = None):
-        src = _as_index_tensor("source", source)
-        dst = _as_index_tensor("target", target)
+        src = as_index_tensor("source", source)
+        dst = as_index_tensor("target", target)
         if src.numel() != dst.numel():
             raise GraphInputError(
                 f"source and target must have the same length; got {src.numel()} and {dst.numel()}"
             )
-        w = _as_weight_tensor(weight, src.numel())
+        w = as_weight_tensor(weight, src.numel())
         if src.numel() and (int(src.min()) < 0 or int(dst.min()) < 0):
             which, ids = ("source", src) if int(src.min()) < 0 else ("target", dst)
             k = int(torch.argmin(ids))
@@ -467,9 +467,9 @@ class DirectedGraph:
             >>> g.node_names.tolist(), g.index_of(["c", "b"]).tolist()
             (['b', 'a', 'c'], [2, 0])
         """
-        from .tables import _index_of
+        from .tables import index_of_names
 
-        return _index_of(self, names)
+        return index_of_names(self, names)
 
     def __repr__(self) -> str:
         return f"DirectedGraph(num_nodes={self.num_nodes}, num_edges={self.num_edges})"
@@ -697,7 +697,7 @@ class DirectedGraph:
         except TypeError:
             raise GraphInputError(
                 f"weight must be the name of an edge attribute (a string or other hashable key) or None; "
-                f"got {_value_text(weight)}"
+                f"got {value_text(weight)}"
             ) from None
         index = {node: i for i, node in enumerate(G.nodes)}
         rows, cols, vals = [], [], []
@@ -711,7 +711,7 @@ class DirectedGraph:
             u, v = list(G.nodes)[rows[k]], list(G.nodes)[cols[k]]
             raise GraphInputError(
                 f"edge attribute {weight!r} must be a real number on every edge; edge ({u!r}, {v!r}) "
-                f"has {_value_text(vals[k])}"
+                f"has {value_text(vals[k])}"
             )
         vals_arr = np.asarray(vals, dtype=np.float64)
         bad = ~np.isfinite(vals_arr)
@@ -743,7 +743,7 @@ class DirectedGraph:
         """The weighted adjacency A (N, N) as a scipy sparse matrix, A[u, v] = w(u -> v)."""
         formats = ("csr", "csc", "coo", "lil", "dok", "bsr", "dia")
         if not isinstance(format, str) or format not in formats:
-            raise GraphInputError(f"format must be one of {formats} (scipy sparse formats); got {_value_text(format)}")
+            raise GraphInputError(f"format must be one of {formats} (scipy sparse formats); got {value_text(format)}")
         if format != "coo":
             check_node_count(self.num_nodes, what=f"to_scipy({format!r})", bytes_per_node=16)
         coo = sp.coo_matrix(
@@ -779,7 +779,7 @@ class DirectedGraph:
 
         So ``A_new = A[perm][:, perm]``, and features follow with ``x[perm]``.
         """
-        p = _as_index_tensor("perm", perm)
+        p = as_index_tensor("perm", perm)
         n = self.num_nodes
         if p.numel() != n:
             raise GraphInputError(f"perm must be a permutation of 0..{n - 1} (length {n}); got length {p.numel()}")

@@ -34,7 +34,7 @@ import torch
 
 from ._limits import check_node_count
 from ._checks import check_choice, check_flag
-from .errors import GraphInputError, PhaseWrapWarning, _value_text
+from .errors import GraphInputError, PhaseWrapWarning, value_text
 from .graph import DirectedGraph, inverse_power
 from .sparse import SparseOperator, csr_matrix
 
@@ -113,7 +113,7 @@ def _real_dtype(dtype) -> torch.dtype:
     dtype = torch.float32 if dtype is None else dtype
     if not isinstance(dtype, torch.dtype) or dtype not in _REAL:
         raise GraphInputError(
-            f"dtype must be torch.float32 or torch.float64 for this real operator; got {_value_text(dtype)}"
+            f"dtype must be torch.float32 or torch.float64 for this real operator; got {value_text(dtype)}"
         )
     return dtype
 
@@ -124,7 +124,7 @@ def _complex_dtype(dtype) -> torch.dtype:
     if not isinstance(dtype, torch.dtype) or dtype not in _COMPLEX:
         raise GraphInputError(
             f"dtype must be torch.complex64 or torch.complex128 (or float32/float64 for that "
-            f"precision) for a magnetic operator; got {_value_text(dtype)}"
+            f"precision) for a magnetic operator; got {value_text(dtype)}"
         )
     return dtype
 

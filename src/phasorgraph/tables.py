@@ -300,7 +300,7 @@ def _factorize(values: np.ndarray, role: str) -> tuple[np.ndarray, np.ndarray]:
     return rank[inverse.reshape(-1)], uniq[order]
 
 
-def _as_node_names(role: str, names: Any, num_nodes: Optional[int]) -> np.ndarray:
+def as_node_names(role: str, names: Any, num_nodes: Optional[int]) -> np.ndarray:
     """A read-only 1-D array of num_nodes distinct, non-missing ids."""
     if isinstance(names, (str, bytes)):
         raise GraphInputError(f"{role} must be a sequence of node ids, one per node; got the single string {names!r}")
@@ -367,7 +367,7 @@ def _positions(graph, role: str, query: np.ndarray, *, allow_unknown: bool = Fal
     return idx
 
 
-def _index_of(graph, names: Any) -> torch.Tensor:
+def index_of_names(graph, names: Any) -> torch.Tensor:
     """DirectedGraph.index_of: ids -> int64 node numbers."""
     collection = isinstance(names, (list, tuple, np.ndarray, torch.Tensor)) or _is_series(names)
     if collection:
@@ -494,7 +494,7 @@ def graph_from_table(table: Any, source: str = "source", target: str = "target",
         codes, names = _factorize(both, "source and target")
         s_idx, d_idx = codes[0::2], codes[1::2]
     else:
-        names = _as_node_names("nodes", nodes, None)
+        names = as_node_names("nodes", nodes, None)
         s_idx = _positions_in(names, "source", source, src)
         d_idx = _positions_in(names, "target", target, dst)
     n = int(names.shape[0])
@@ -663,7 +663,7 @@ def node_labels(graph, table: Any, id: str = "id", label: str = "label", *, clas
         if cls.dtype.kind != "O" and values.dtype.kind == "O":
             cls = cls.astype(object)
     else:
-        cls = _as_node_names("classes", classes, None)
+        cls = as_node_names("classes", classes, None)
     code = _lookup(cls, values) if values.size else np.zeros(0, dtype=np.int64)
     if (code < 0).any():
         bad = list(dict.fromkeys(values[code < 0].tolist()))[:_SHOW]

@@ -15,7 +15,7 @@ import numpy as np
 import torch
 
 from .._checks import check_flag
-from ..errors import GraphInputError, _value_text
+from ..errors import GraphInputError, value_text
 from ..graph import DirectedGraph
 from .._groups import group_max, group_mean, group_sum
 from ._pairs import seeded_generator
@@ -131,7 +131,7 @@ class GraphBatch:
         """
         x = self._check_rows(x)
         if not isinstance(reduce, str) or reduce not in _REDUCE:
-            raise GraphInputError(f"reduce must be one of {tuple(_REDUCE)}; got {_value_text(reduce)}")
+            raise GraphInputError(f"reduce must be one of {tuple(_REDUCE)}; got {value_text(reduce)}")
         return _REDUCE[reduce](x, self.graph_index, self.num_graphs)
 
     def split_by_graph(self, x: torch.Tensor) -> list[torch.Tensor]:

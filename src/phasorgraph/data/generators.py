@@ -19,7 +19,7 @@ import numpy as np
 import torch
 
 from .._limits import check_node_count, physical_memory
-from ..errors import GraphInputError, _value_text
+from ..errors import GraphInputError, value_text
 from ..graph import DirectedGraph
 from ._pairs import index_from_pair, num_pairs, pair_from_index, seeded_generator, sample_avoiding, sample_distinct
 
@@ -39,7 +39,7 @@ _TOL = 1e-9
 
 def _count(name: str, value: Any, minimum: int = 0) -> int:
     if isinstance(value, bool) or not isinstance(value, numbers.Integral) or int(value) < minimum:
-        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {_value_text(value)}")
+        raise GraphInputError(f"{name} must be an integer >= {minimum}; got {value_text(value)}")
     return int(value)
 
 
@@ -63,13 +63,13 @@ def _sizes(name: str, sizes: Any) -> np.ndarray:
         arr = np.asarray(sizes)
     except (ValueError, TypeError) as exc:
         raise GraphInputError(
-            f"{name} must be a 1-D sequence of non-negative integers; got {_value_text(sizes)}") from exc
+            f"{name} must be a 1-D sequence of non-negative integers; got {value_text(sizes)}") from exc
     if arr.ndim != 1 or arr.size == 0:
         raise GraphInputError(f"{name} must be a non-empty 1-D sequence of non-negative integers; got shape {arr.shape}")
     if arr.dtype.kind not in "iu" or (arr < 0).any():
-        raise GraphInputError(f"{name} must hold non-negative integers; got {_value_text(arr.tolist())}")
+        raise GraphInputError(f"{name} must hold non-negative integers; got {value_text(arr.tolist())}")
     if arr.dtype.kind == "u" and (arr >= 2 ** 62).any():
-        raise GraphInputError(f"{name} must hold sizes below 2**62; got {_value_text(arr.tolist())}")
+        raise GraphInputError(f"{name} must hold sizes below 2**62; got {value_text(arr.tolist())}")
     arr = arr.astype(np.int64)
     total = sum(int(v) for v in arr)  # Python ints: no overflow
     if total >= 2 ** 31:
@@ -90,10 +90,10 @@ def _block_matrix(name: str, value: Any, blocks: int) -> np.ndarray:
         arr = np.asarray(value)
     except (ValueError, TypeError) as exc:  # ragged rows
         raise GraphInputError(
-            f"{name} must be {accepted}; got {_value_text(value)} (rows of different lengths?)"
+            f"{name} must be {accepted}; got {value_text(value)} (rows of different lengths?)"
         ) from exc
     if arr.dtype.kind not in "iufb":  # text, None, complex, objects: never cast silently
-        raise GraphInputError(f"{name} must be {accepted} (real numbers); got {_value_text(value)}")
+        raise GraphInputError(f"{name} must be {accepted} (real numbers); got {value_text(value)}")
     arr = arr.astype(np.float64)
     if arr.ndim == 0:
         arr = np.full((blocks, blocks), float(arr))

@@ -19,7 +19,7 @@ import numpy as np
 import scipy.sparse as sp
 import torch
 
-from ..errors import GraphInputError, _value_text
+from ..errors import GraphInputError, value_text
 from ..graph import DirectedGraph
 from ._pairs import index_from_pair, num_pairs, pair_from_index, sample_avoiding, sample_distinct, seeded_generator
 
@@ -103,7 +103,7 @@ def split_nodes(labels: Any, train: float = 0.6, val: float = 0.2, seed: Any = N
     try:
         y = labels.detach().cpu().numpy() if isinstance(labels, torch.Tensor) else np.asarray(labels)
     except (ValueError, TypeError) as exc:
-        raise GraphInputError(f"labels must be a 1-D array of integer classes; got {_value_text(labels)}") from exc
+        raise GraphInputError(f"labels must be a 1-D array of integer classes; got {value_text(labels)}") from exc
     if y.ndim != 1 or (y.size and y.dtype.kind not in "iu"):
         raise GraphInputError(f"labels must be a 1-D array of integer classes; got shape {y.shape}, dtype {y.dtype}")
     if y.size and int(y.min()) < -1:

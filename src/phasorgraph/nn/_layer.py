@@ -18,7 +18,7 @@ from torch.autograd.function import once_differentiable
 
 from .._checks import check_flag
 from .._limits import physical_memory
-from ..errors import GraphInputError, _value_text
+from ..errors import GraphInputError, value_text
 
 REAL = (torch.float32, torch.float64)
 COMPLEX_OF = {torch.float32: torch.complex64, torch.float64: torch.complex128}
@@ -70,7 +70,7 @@ def real_factory_dtype(dtype) -> Optional[torch.dtype]:
     if not isinstance(dtype, torch.dtype) or dtype not in REAL_OF:
         raise GraphInputError(
             f"dtype must be torch.float32 or torch.float64 (or complex64/complex128 for that "
-            f"precision); got {_value_text(dtype)}"
+            f"precision); got {value_text(dtype)}"
         )
     return REAL_OF[dtype]
 
