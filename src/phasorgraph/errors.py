@@ -28,3 +28,7 @@ class PhaseWrapWarning(UserWarning):
     builders, which say what to do: ``phase="relative"`` (the net-flow fraction, free of units)
     or compressed weights (e.g. ``weight_transform="log1p"`` with a charge small enough).
     """
+
+
+# the earlier private name, kept so code written against it still imports (use value_text)
+_value_text = value_text

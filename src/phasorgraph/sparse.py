@@ -45,7 +45,7 @@ import torch
 from torch import Tensor
 
 from ._checks import check_flag
-from .errors import GraphInputError, _value_text
+from .errors import GraphInputError, value_text
 
 __all__ = [
     "SparseOperator",
@@ -196,7 +196,7 @@ def _check_spectrum(spectrum) -> Optional[tuple]:
     if not ok or float(spectrum[0]) > float(spectrum[1]):
         raise GraphInputError(
             f"spectrum must be None or a pair (low, high) of finite numbers with low <= high holding every "
-            f"eigenvalue; got {_value_text(spectrum)}"
+            f"eigenvalue; got {value_text(spectrum)}"
         )
     return float(spectrum[0]), float(spectrum[1])
 
@@ -207,7 +207,7 @@ def _check_device(device) -> torch.device:
         parsed = torch.device(device)
         torch.empty(0, device=parsed)  # raises if that device is not available here
     except (RuntimeError, TypeError, AssertionError, ValueError) as exc:
-        raise GraphInputError(f"device {_value_text(device)} is not a device available here ({exc})") from None
+        raise GraphInputError(f"device {value_text(device)} is not a device available here ({exc})") from None
     return parsed
 
 
@@ -275,11 +275,11 @@ class SparseOperator:
         self.hermitian = check_flag("hermitian", hermitian)
         self.spectrum = _check_spectrum(spectrum)
         if not isinstance(kind, str):
-            raise GraphInputError(f"kind must be a string naming the operator; got {_value_text(kind)}")
+            raise GraphInputError(f"kind must be a string naming the operator; got {value_text(kind)}")
         self.kind = kind
         if max_eigenvalue is not None and (isinstance(max_eigenvalue, bool) or not isinstance(max_eigenvalue, numbers.Real)
                                            or not math.isfinite(float(max_eigenvalue))):
-            raise GraphInputError(f"max_eigenvalue must be None or a finite number; got {_value_text(max_eigenvalue)}")
+            raise GraphInputError(f"max_eigenvalue must be None or a finite number; got {value_text(max_eigenvalue)}")
         self.low_rank = low_rank
         self.similar = similar
         self.max_eigenvalue = max_eigenvalue
