@@ -856,3 +856,7 @@ class DirectedGraph:
             raise GraphInputError(f"keep must be a boolean mask of shape ({self.num_edges},); got {tuple(keep.shape)}")
         return DirectedGraph(self._source[keep], self._target[keep], self._weight[keep], self.num_nodes,
                              node_names=self._node_names)
+
+
+# earlier private names, kept so code written against them still imports
+_as_index_tensor, _as_weight_tensor = as_index_tensor, as_weight_tensor

@@ -675,3 +675,7 @@ def node_labels(graph, table: Any, id: str = "id", label: str = "label", *, clas
     labels[pos[has]] = code
     cls = np.asarray(cls).copy()
     return NodeLabels(torch.as_tensor(labels), cls)
+
+
+# earlier private names, kept so code written against them still imports
+_as_node_names, _index_of = as_node_names, index_of_names
