@@ -261,3 +261,33 @@ def test_complex_activations_keep_nan_as_nan(layer):
     out = layer(z)
     assert torch.isnan(out[0]) and torch.isnan(out[1])
     assert not torch.isnan(out[2:]).any()
+
+
+@settings(max_examples=20)
+@given(st.integers(0, 2 ** 31 - 1), st.sampled_from(["chebyshev", "spectral", "magnetic"]))
+def test_property_nan_never_leaves_its_connected_component(seed, layer_kind):
+    # components from scipy.sparse.csgraph.connected_components (weak connectivity), an outside reference
+    from scipy.sparse.csgraph import connected_components
+
+    rng = np.random.default_rng(seed)
+    n = 10
+    src, dst = rng.integers(0, n, 9), rng.integers(0, n, 9)
+    g = DirectedGraph(src, dst, rng.uniform(0.2, 1.0, 9), n)
+    labels = connected_components(g.to_scipy(), directed=True, connection="weak")[1]
+    node = int(rng.integers(0, n))
+    torch.manual_seed(seed % 1000)
+    if layer_kind == "chebyshev":
+        layer, operand = ChebyshevFilter(2, 2, order=3, dtype=torch.float64), normalized_laplacian(g, dtype=torch.float64)
+    elif layer_kind == "spectral":
+        layer, operand = SpectralMultiplier(2, 2, knots=4, dtype=torch.float64), normalized_laplacian(g, dtype=torch.float64)
+    else:
+        layer, operand = MagneticFilter(2, 2, order=2, charge=0.2, dtype=torch.float64), g
+    x = torch.as_tensor(rng.standard_normal((n, 2)))
+    clean = layer(x, operand).detach()
+    x[node, 1] = float("nan")
+    dirty = layer(x, operand).detach()
+    nan_rows = torch.isnan(dirty).any(dim=1).numpy()
+    assert nan_rows[node]
+    assert (labels[nan_rows] == labels[node]).all()
+    outside = labels != labels[node]
+    torch.testing.assert_close(dirty[outside], clean[outside], rtol=1e-12, atol=1e-12)
