@@ -221,6 +221,14 @@ def _gradchecks(world: int) -> dict:
         op = _operator_of(shard, kind)
         torch.manual_seed(0)  # fast mode draws its random directions: the same on every rank
         out[name] = torch.autograd.gradcheck(replicated(op), (x,), atol=1e-8, fast_mode=True)
+    op = _operator_of(shard, "magnetic_laplacian")
+
+    def fused(x):  # alpha A x + shift x + beta z, one autograd function (z depends on x too)
+        xl = _TakeRows.apply(x, nodes)
+        return _GatherRows.apply(op.matmul_add(xl, 2 * xl, alpha=0.7, shift=-0.3, beta=-1.0), nodes, n)
+
+    torch.manual_seed(0)
+    out["hermitian_fused"] = torch.autograd.gradcheck(fused, (x,), atol=1e-8, fast_mode=True)
     q = torch.tensor(0.15, dtype=F64, requires_grad=True)
 
     def learned(x, q):
@@ -248,7 +256,8 @@ def _checks(rank: int, world: int) -> dict:
         xl = x[nodes].clone().requires_grad_()
         y = op @ xl
         (y.abs() ** 2 * c[:, None]).sum().backward()
-        ops[name] = {"dense": op.to_dense(), "y": y.detach(), "grad": xl.grad, "spectrum": op.spectrum}
+        ops[name] = {"dense": op.to_dense(), "y": y.detach(), "grad": xl.grad, "spectrum": op.spectrum,
+                     "nnz": op.nnz, "repr": repr(op)}
     res["operators"] = ops
     # shards built from disjoint local slices (every third edge on each rank, a different split)
     sl = slice(rank, None, world)
@@ -403,6 +412,7 @@ def test_sharded_operators_are_the_owned_rows(spawned, world):
             close(got["y"], y.detach()[r["nodes"]])
             close(got["grad"], xr.grad[r["nodes"]])         # backward across the exchange
             assert got["spectrum"] == pytest.approx(full.spectrum, rel=1e-12), name  # agreed over ranks
+            assert got["nnz"] == int((dense[r["nodes"]] != 0).sum()) and f"of 34" in got["repr"]
         dense_local = torch.cat([r["local_edges_dense"] for r in ranks])
     close(dense_local, O.magnetic_laplacian(g, 0.2, dtype=C128).to_dense()[torch.cat([r["nodes"] for r in ranks])])
 

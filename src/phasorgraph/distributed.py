@@ -429,21 +429,33 @@ def _owned_rows(matrix: torch.Tensor, num_owned: int) -> torch.Tensor:
 
 
 class _ShardedHermitianProduct(torch.autograd.Function):
-    """y = A x on the owned rows (exchange, then the local product); backward: A g, the same."""
+    """y = alpha A x + shift x + beta z on the owned rows (exchange, then one fused local pass);
+    backward: alpha A g + shift g for x (the same sharded product: A^H = A) and beta g for z."""
 
     @staticmethod
-    def forward(ctx, x, op):
-        ctx.op = op
+    def forward(ctx, x, z, op, alpha, shift, beta):
+        ctx.op, ctx.alpha, ctx.shift, ctx.beta = op, alpha, shift, beta
         ctx.x_is_complex = x.is_complex()
-        return op._product(x)
+        ctx.z_is_complex = z is not None and z.is_complex()
+        y = op._product(x, alpha, shift)
+        if z is not None and beta != 0:
+            y = y.add_(z, alpha=beta) if torch.promote_types(y.dtype, z.dtype) == y.dtype else y + beta * z
+        return y
 
     @staticmethod
     @once_differentiable
     def backward(ctx, grad):
-        g = ctx.op._product(grad.contiguous())
-        if g.is_complex() and not ctx.x_is_complex:
-            g = g.real
-        return g, None
+        grad = grad.contiguous()
+        gx = gz = None
+        if ctx.needs_input_grad[0]:
+            gx = ctx.op._product(grad, ctx.alpha, ctx.shift)
+            if gx.is_complex() and not ctx.x_is_complex:
+                gx = gx.real
+        if ctx.needs_input_grad[1]:
+            gz = grad * ctx.beta
+            if gz.is_complex() and not ctx.z_is_complex:
+                gz = gz.real
+        return gx, gz, None, None, None, None
 
 
 def _no_rows(ext: torch.Tensor, dtype: torch.dtype) -> torch.Tensor:
@@ -513,6 +525,11 @@ class ShardedOperator(SparseOperator):
     def shard(self) -> "GraphShard":
         return self._shard
 
+    @property
+    def nnz(self) -> int:
+        """Stored non-zeros of the owned rows."""
+        return self._local.nnz
+
     def __repr__(self) -> str:
         s = self._shard
         return (f"ShardedOperator(kind={self.kind!r}, rank={s.rank}/{s.world_size}, rows={self.num_rows} of "
@@ -538,21 +555,25 @@ class ShardedOperator(SparseOperator):
     def _extended(self, x: torch.Tensor, halo: torch.Tensor) -> torch.Tensor:
         return torch.cat([x, halo.to(x.dtype)], dim=0)
 
-    def _product(self, x: torch.Tensor) -> torch.Tensor:
-        """Owned rows of A x without autograd bookkeeping (used inside autograd functions)."""
+    def _product(self, x: torch.Tensor, alpha: float = 1.0, shift: float = 0.0) -> torch.Tensor:
+        """Owned rows of ``alpha A x + shift x`` without autograd bookkeeping (inside autograd
+        functions): the exchange, then one fused pass of the local kernel."""
         ext = self._extended(x, _halo_rows(self._shard._plan, x))
         if ext.shape[0] == 0:  # nothing local at all: a zero-row result of the right dtype
             dtype = torch.promote_types(x.dtype, self.dtype)
             return x.new_zeros(x.shape, dtype=dtype)
         with torch.no_grad():
-            y = self._local.matmul(ext)
+            if alpha == 1.0 and shift == 0.0:
+                y = self._local.matmul(ext)
+            else:
+                y = self._local.matmul_add(ext, alpha=alpha, shift=shift)
         return y[: self.num_rows]
 
     def matmul(self, x: torch.Tensor) -> torch.Tensor:
         """Owned rows of ``A x`` for x (num_rows, ...), differentiable in x. Collective."""
         self._check_x(x)
         if self.hermitian:
-            return _ShardedHermitianProduct.apply(x, self)
+            return _ShardedHermitianProduct.apply(x, None, self, 1.0, 0.0, 0.0)
         ext = self._extended(x, halo_exchange(self._shard._plan, x))
         if ext.shape[0] == 0:  # an empty part: no rows, but the exchange stays in the backward
             return _no_rows(ext, torch.promote_types(x.dtype, self.dtype))
@@ -562,7 +583,14 @@ class ShardedOperator(SparseOperator):
 
     def matmul_add(self, x: torch.Tensor, z: Optional[torch.Tensor] = None, *, alpha: float = 1.0,
                    beta: float = 1.0, shift: float = 0.0) -> torch.Tensor:
-        """``alpha A x + shift x + beta z`` on the owned rows (the sharded product, then the sum). Collective."""
+        """``alpha A x + shift x + beta z`` on the owned rows. Collective.
+
+        Hermitian operators: one exchange and one fused local pass, in one autograd function
+        whose backward is the same fused sharded product. Others: the product, then the sums.
+        """
+        if self.hermitian:
+            self._check_x(x)
+            return _ShardedHermitianProduct.apply(x, z, self, float(alpha), float(shift), float(beta))
         y = self.matmul(x)
         y = y.mul(alpha) if alpha != 1 else y
         if shift:
