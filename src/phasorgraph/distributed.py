@@ -967,6 +967,16 @@ class GraphShard:
         q on each rank is the part from its own rows; summed over ranks it is the gradient of
         the whole graph (DistributedDataParallel averages it like any other parameter).
         Collective in every call of the returned map.
+
+        Example:
+            >>> import torch
+            >>> from phasorgraph import DirectedGraph
+            >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 2, 0]])
+            >>> shard = GraphShard.from_graph(g, partition_nodes(g, 1))
+            >>> q = torch.tensor(0.1, requires_grad=True)
+            >>> y = shard.magnetic_product(q)(torch.ones(shard.num_rows, 2))
+            >>> y.abs().sum().backward(); y.shape, q.grad is not None
+            (torch.Size([3, 2]), True)
         """
         local_apply = magnetic_product(self.local_graph, charge, phase=phase)
         n_own = self.num_rows
@@ -985,7 +995,19 @@ class GraphShard:
         return apply
 
     def halo(self, x: torch.Tensor) -> torch.Tensor:
-        """Collective: the halo rows of x (num_rows, ...) -> (num_halo, ...); differentiable."""
+        """Collective: the halo rows of x (num_rows, ...) -> (num_halo, ...); differentiable.
+
+        The backward sends the gradient of each halo row back to its owner, where the gradients
+        from all ranks are summed.
+
+        Example:
+            >>> import torch
+            >>> from phasorgraph import DirectedGraph
+            >>> g = DirectedGraph.from_edges([[0, 1], [1, 2]])
+            >>> shard = GraphShard.from_graph(g, partition_nodes(g, 1))  # one part: no halo
+            >>> shard.halo(torch.ones(3, 4)).shape
+            torch.Size([0, 4])
+        """
         if not isinstance(x, torch.Tensor) or x.dim() < 1 or x.shape[0] != self.num_rows:
             raise GraphInputError(f"x must have the {self.num_rows} owned rows of this shard; "
                                   f"got shape {tuple(getattr(x, 'shape', ()))}")
