@@ -3,7 +3,8 @@
 from .errors import GraphInputError
 from .graph import DirectedGraph
 from .sparse import SparseOperator, general_matmul, hermitian_matmul, values_matmul
-from . import data, learned_charge, nn, operators, spectral, tables
+from . import clustering, data, learned_charge, nn, operators, spectral, tables
+from .clustering import adjusted_rand_index, cluster_nodes
 from .learned_charge import magnetic_matmul, magnetic_product
 from .operators import *  # noqa: F401,F403  (every construction; listed once, in operators.__all__)
 from .scan import ChargeScan, scan_charges
@@ -30,5 +31,8 @@ __all__ = [
     "ChargeScan",
     "filter_response",
     "plot_filter_response",
+    "clustering",
+    "cluster_nodes",
+    "adjusted_rand_index",
     "__version__",
 ] + list(operators.__all__)
