@@ -85,7 +85,7 @@ def test_makefile_installs_torch_through_the_decision_first():
     package_line = next(i for i, line in enumerate(out) if "pip install" in line and "-e" in line)
     assert torch_line < package_line and '"torch==2.13.0"' in out[torch_line]
     assert not any("pip install" in line and "torch" in line for line in out)  # never a bare torch install
-    assert ".[test,tutorials,tables]" in out[package_line]
+    assert ".[test,tutorials,tables,opendata]" in out[package_line]
 
 
 def test_real_dry_run_here_resolves_and_decides():
