@@ -131,3 +131,67 @@ def test_refuses_bad_inputs():
         layer(torch.zeros(7, 3, dtype=torch.complex128), _graph())
     with pytest.raises(GraphInputError, match=r"graph must be a DirectedGraph .*for BandMix; got SparseOperator"):
         layer(torch.zeros(7, 3, dtype=torch.float64), operators.diffusion(_graph()))
+
+
+# ---------------------------------------------------------------------- magnetic band-pass channels
+def _dense_magnetic_bands(graph, x, J, q, phase):
+    # T(q) = (I + D^-1/2 H D^-1/2) / 2, H = As * exp(i Theta) (DESIGN.md; Zhang et al. 2021),
+    # written densely from networkx's adjacency matrix
+    A = nx.to_numpy_array(graph.to_networkx(), nodelist=range(graph.num_nodes), weight="weight")
+    As, anti = (A + A.T) / 2, A - A.T
+    theta = 2 * np.pi * q * (np.sign(anti) if phase == "sign" else anti)
+    d = As.sum(axis=1)
+    s = np.where(d > 0, 1 / np.sqrt(np.where(d > 0, d, 1)), 0)
+    T = (np.eye(len(d)) + As * np.exp(1j * theta) * np.outer(s, s)) / 2
+    P = [np.eye(len(d))] + [np.linalg.matrix_power(T, 2 ** j) for j in range(J + 1)]
+    return np.stack([np.abs((P[i] - P[i + 1]) @ x) for i in range(J + 1)], axis=1)
+
+
+@pytest.mark.parametrize("q, phase", [(0.25, "difference"), (0.1, "sign")])
+def test_magnetic_band_channels_match_dense_reference(q, phase):
+    g, x = _graph(), _x(4)
+    layer = BandMix(3, 4, low_pass_steps=(1,), scales=2, charge=q, phase=phase, dtype=torch.float64)
+    got = layer.channels(x, g)
+    assert got.dtype == torch.float64 and got.shape == (7, 1 + 3, 3)
+    np.testing.assert_allclose(got[:, 1:].numpy(), _dense_magnetic_bands(g, x.numpy(), 2, q, phase), atol=1e-12)
+    # the low-pass channels do not depend on the charge
+    plain = BandMix(3, 4, low_pass_steps=(1,), scales=2, dtype=torch.float64)
+    torch.testing.assert_close(got[:, :1], plain.channels(x, g)[:, :1])
+
+
+def test_magnetic_band_channels_charge_zero_and_reversal():
+    g, x = _graph(), _x(5)
+    plain = BandMix(3, 4, (1, 2), 2, dtype=torch.float64).channels(x, g)
+    # q = 0: H(0) = As, the symmetric channels again (DESIGN.md)
+    torch.testing.assert_close(BandMix(3, 4, (1, 2), 2, charge=0.0, dtype=torch.float64).channels(x, g), plain)
+    # reversing every edge conjugates T(q); with real x the moduli are unchanged (DESIGN.md)
+    layer = BandMix(3, 4, (1, 2), 2, charge=0.3, dtype=torch.float64)
+    torch.testing.assert_close(layer.channels(x, g.reverse()), layer.channels(x, g), atol=1e-12, rtol=0)
+    # and they differ from the symmetric ones when edges are one-way
+    assert not torch.allclose(layer.channels(x, g)[:, 2:], plain[:, 2:])
+    assert repr(layer) == "BandMix(3, 4, low_pass_steps=(1, 2), scales=2, charge=0.3)"
+
+
+def test_magnetic_gradcheck_and_float32():
+    g = _graph()
+    layer = BandMix(3, 2, low_pass_steps=(1,), scales=1, charge=0.2, phase="sign", dtype=torch.float64)
+    x = _x(6).requires_grad_(True)
+    names = [k for k, _ in layer.named_parameters()]
+    params = [p.detach().clone().requires_grad_(True) for _, p in layer.named_parameters()]
+
+    def fn(v, *ps):
+        return torch.func.functional_call(layer, dict(zip(names, ps)), (v, g))
+
+    assert torch.autograd.gradcheck(fn, (x, *params))
+    out = BandMix(3, 2, (1,), 1, charge=0.2)(torch.randn(7, 3), g)
+    assert out.dtype == torch.float32 and torch.isfinite(out).all()
+
+
+@pytest.mark.parametrize("kwargs, match", [
+    (dict(charge=0.7), r"charge must lie in \[0, 0.5\]; got 0.7"),
+    (dict(charge="a"), r"charge must be a real number"),
+    (dict(charge=0.1, phase="odd"), r"phase"),
+])
+def test_magnetic_bad_arguments(kwargs, match):
+    with pytest.raises(GraphInputError, match=match):
+        BandMix(3, 4, (1,), 2, **kwargs)

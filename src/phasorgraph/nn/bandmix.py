@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 import numbers
-from typing import Sequence
+from typing import Optional, Sequence
 
 import torch
 from torch import nn
@@ -46,7 +46,11 @@ class BandMix(nn.Module):
     * low-pass c = 1..L: :math:`Z_c = \tilde A^{k_c} x` for :math:`k_c` in ``low_pass_steps``,
       with :math:`\tilde A` the renormalized adjacency (Kipf & Welling 2017);
     * band-pass c = L + 1..L + J + 1: :math:`Z_c = |\Psi_j x|`, j = 0..J, the diffusion
-      wavelets of the lazy diffusion T (:class:`~phasorgraph.nn.DiffusionWavelets`).
+      wavelets of the lazy diffusion T (:class:`~phasorgraph.nn.DiffusionWavelets`); with
+      ``charge=q`` the wavelets of the magnetic diffusion
+      :math:`T(q) = (I + D^{-1/2} H(q) D^{-1/2}) / 2` (:func:`~phasorgraph.operators.diffusion`),
+      so the band-pass channels see which way the edges run. The modulus makes them real; it
+      also makes them unchanged when every edge is reversed (that conjugates T(q), and x is real).
 
     Each channel has its own linear map :math:`H_c = Z_c W_c^T + b_c` (N, out). A node v scores
     its channels with :math:`e_{vc} = \mathrm{LeakyReLU}_{0.2}(a_1^T H_{vc} + a_2^T \bar H_v)`,
@@ -67,6 +71,10 @@ class BandMix(nn.Module):
             for 1..K.
         scales: J >= 1 (band-pass channels j = 0..J).
         bias: learned :math:`b_c` (default True).
+        charge: None (default: symmetric T) or a fixed q in [0, 0.5] for the band-pass channels
+            (keyword-only); q = 0 gives the symmetric channels again.
+        phase: "difference" (default), "sign" or "relative": the magnetic phase of T(q), as in
+            :func:`~phasorgraph.operators.magnetic_adjacency` (keyword-only; only with a charge).
         device, dtype: factory kwargs for the parameters (real floating dtype).
 
     Shape:
@@ -93,8 +101,11 @@ class BandMix(nn.Module):
     """
 
     def __init__(self, in_channels: int, out_channels: int, low_pass_steps: Sequence[int] | int = (1, 2, 3),
-                 scales: int = 3, bias: bool = True, *, device=None, dtype=None):
+                 scales: int = 3, bias: bool = True, *, charge: Optional[float] = None,
+                 phase: str = "difference", device=None, dtype=None):
         super().__init__()
+        self.charge = None if charge is None else operators._check_charge(charge)
+        self.phase = operators._check_phase(phase)
         self.in_channels = check_count("in_channels", in_channels)
         self.out_channels = check_count("out_channels", out_channels)
         self.low_pass_steps = _check_steps(low_pass_steps)
@@ -123,7 +134,11 @@ class BandMix(nn.Module):
     def _graph_operators(self, graph, dtype: torch.dtype, device: torch.device):
         # kept with the graph (graph.operator): switching graphs rebuilds nothing
         adj = graph.operator(operators.renormalized_adjacency, dtype=dtype, device=device)
-        diff = graph.operator(operators.diffusion, dtype=dtype, device=device)
+        if self.charge is None:
+            diff = graph.operator(operators.diffusion, dtype=dtype, device=device)
+        else:  # dtype float32 / float64 selects complex64 / complex128
+            diff = graph.operator(operators.diffusion, charge=self.charge, phase=self.phase, dtype=dtype,
+                                  device=device)
         return adj, diff
 
     def channels(self, x: torch.Tensor, graph) -> torch.Tensor:
@@ -135,7 +150,7 @@ class BandMix(nn.Module):
             raise GraphInputError(f"x must be real float32 or float64 for BandMix; got dtype {x.dtype}")
         adj, diff = self._graph_operators(graph, x.dtype, x.device)
         low = torch.stack(diffusion_powers(adj, None, x, self.low_pass_steps), dim=1)
-        band = dyadic_bands(diff, None, x, self.scales)[:, :-1].abs()
+        band = dyadic_bands(diff, None, x, self.scales)[:, :-1].abs().to(x.dtype)
         return torch.cat([low, band], dim=1)
 
     def forward(self, x: torch.Tensor, graph) -> torch.Tensor:
@@ -157,4 +172,8 @@ class BandMix(nn.Module):
         s = f"{self.in_channels}, {self.out_channels}, low_pass_steps={self.low_pass_steps}, scales={self.scales}"
         if self.bias is None:
             s += ", bias=False"
+        if self.charge is not None:
+            s += f", charge={self.charge}"
+            if self.phase != "difference":
+                s += f", phase={self.phase!r}"
         return s
