@@ -30,7 +30,8 @@ import freight  # noqa: E402
 CASES = {
     "01_direction_matters.py": ([], ["Tier classification, test accuracy", "Chebyshev, symmetrized",
                                      "BandMix, symmetrized", "Magnetic, learned q", "Magnetic, bank of q",
-                                     "Magnetic scattering"], "01_direction_matters.png"),
+                                     "Magnetic scattering", "Chebyshev, PageRank Laplacian",
+                                     "Proximity, 1st + 2nd order"], "01_direction_matters.png"),
     "02_link_direction.py": (["--no-plot"], ["Held-out lanes, test metrics", "charge learned from 0.05",
                                              "charge 0 (no direction)"], None),
     "03_graph_classification.py": (["--no-plot"], ["Flow-network family, test accuracy",
@@ -43,6 +44,9 @@ CASES = {
     # here as one process; tests/test_graph_shards.py runs it on two ranks
     "07_one_graph_many_ranks.py": ([], ["Partitions into 1 block(s)", "max |sharded - whole graph|",
                                         "Tier classification, trained on 1 rank(s)"], None),
+    "08_bandpass_and_direction.py": ([], ["Transit depot or end point, test accuracy", "symmetric band-pass",
+                                          "magnetic low-pass", "magnetic band-pass", "BandMix, magnetic band-pass"],
+                                     "08_bandpass_and_direction.png"),
 }
 
 
