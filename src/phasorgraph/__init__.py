@@ -31,7 +31,6 @@ __all__ = [
     "ChargeScan",
     "filter_response",
     "plot_filter_response",
-    "clustering",
     "cluster_nodes",
     "adjusted_rand_index",
     "__version__",

@@ -144,7 +144,7 @@ def cluster_nodes(graph: DirectedGraph, num_clusters: int, *, charge: float = 0.
         >>> adjusted_rand_index(labels, y) > 0.9
         True
     """
-    graph = operators._check_graph(graph)
+    graph = operators.check_graph(graph, "cluster_nodes")
     n = graph.num_nodes
     k = _check_num_clusters(num_clusters, n)
     rng = _check_seed(seed)

@@ -105,7 +105,7 @@ class BandMix(nn.Module):
                  phase: str = "difference", device=None, dtype=None):
         super().__init__()
         self.charge = None if charge is None else operators._check_charge(charge)
-        self.phase = operators._check_phase(phase)
+        self.phase = operators.check_phase(phase)
         self.in_channels = check_count("in_channels", in_channels)
         self.out_channels = check_count("out_channels", out_channels)
         self.low_pass_steps = _check_steps(low_pass_steps)
