@@ -82,3 +82,23 @@ def test_bad_input_names_the_argument():
         filter_response(ChebyshevFilter(2, 2, 2))
     with pytest.raises(GraphInputError, match="points must be an integer >= 2"):
         filter_response(ChebyshevFilter(2, 2, 2), 1, max_eigenvalue=2.0)
+
+
+def test_chebyshev_response_on_an_indefinite_operator_uses_its_interval():
+    # the renormalized adjacency has spectrum in [-1, 1] (Kipf & Welling 2017); the layer maps
+    # [a, b] = [op.spectrum[0], max_eigenvalue] onto [-1, 1], and so must the response
+    torch.manual_seed(2)
+    g = _graph()
+    op = pg.renormalized_adjacency(g, dtype=torch.float64)
+    layer = ChebyshevFilter(2, 3, order=3, max_eigenvalue=1.0, dtype=torch.float64)
+    x = torch.randn(g.num_nodes, 2, dtype=torch.float64)
+    y = (layer(x, op) - layer.bias).detach().numpy()
+
+    def at(lam):
+        return filter_response(layer, torch.from_numpy(lam), min_eigenvalue=op.spectrum[0]).gains[0].numpy()
+
+    # reference: the spectral theorem through numpy.linalg.eigh
+    np.testing.assert_allclose(_spectral_output(op.to_dense().numpy(), x.numpy(), at), y, atol=1e-10)
+    assert filter_response(layer, points=3, min_eigenvalue=-1.0).eigenvalues.tolist() == [-1.0, 0.0, 1.0]
+    with pytest.raises(GraphInputError, match="min_eigenvalue must be a number below max_eigenvalue 1"):
+        filter_response(layer, min_eigenvalue=1.5)

@@ -51,6 +51,8 @@ def test_command_prints_the_table_and_writes_png_and_json(tables, capsys):
     record = json.loads((tmp / "out" / "charge_scan.json").read_text())
     assert record["best_charge"] == 0.25 and len(record["rows"]) == 2
     assert record["inputs"]["classes"] == ["hub", "outlet", "terminal"]
+    # with --weight the defaults are the unit-free ones measured in bench/phase_weights.py
+    assert record["inputs"]["weight_transform"] == "log1p" and record["inputs"]["phase"] == "relative"
     assert (tmp / "out" / "charge_scan.png").read_bytes()[:4] == b"\x89PNG"
 
 

@@ -70,12 +70,15 @@ def _weights(layer) -> torch.Tensor:
 _MAX_POINTS = 2 ** 20
 
 
-def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float] = None) -> FilterResponse:
+def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float] = None,
+                    min_eigenvalue: float = 0.0) -> FilterResponse:
     r"""The gain matrices :math:`G(\lambda) = \sum_k T_k(\tilde\lambda) W_k` of a trained filter.
 
-    * ``ChebyshevFilter``: :math:`\lambda \in [0, \lambda_{max}]`, :math:`\tilde\lambda =
-      2\lambda / \lambda_{max} - 1`, with :math:`\lambda_{max}` the layer's fixed value or
-      ``max_eigenvalue`` (2 for a normalized Laplacian).
+    * ``ChebyshevFilter``: :math:`\lambda \in [a, \lambda_{max}]`, :math:`\tilde\lambda =
+      2 (\lambda - a) / (\lambda_{max} - a) - 1`, as the layer rescales its operator, with
+      :math:`\lambda_{max}` the layer's fixed value or ``max_eigenvalue`` (2 for a normalized
+      Laplacian) and :math:`a` = ``min_eigenvalue``, the lower end of the operator's spectrum
+      interval (``op.spectrum[0]``: 0 for Laplacians, -1 for adjacency-type operators).
     * ``MagneticFilter``: :math:`\lambda \in [0, 2]` (the normalized magnetic Laplacian),
       :math:`\tilde\lambda = \lambda - 1`; one gain block per charge group (output channels
       ``g * C_out / G`` to ``(g + 1) * C_out / G - 1``). The polynomial does not depend on the
@@ -91,6 +94,9 @@ def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float]
             a 1-D tensor / sequence of eigenvalues to evaluate at.
         max_eigenvalue: :math:`\lambda_{max}` for a ChebyshevFilter built without one
             (ignored for a MagneticFilter).
+        min_eigenvalue: the lower end :math:`a` of the operator's spectrum interval for a
+            ChebyshevFilter (default 0.0, right for every Laplacian; pass ``op.spectrum[0]``,
+            e.g. -1.0 for the renormalized adjacency). Ignored for a MagneticFilter.
 
     Returns:
         :class:`FilterResponse`.
@@ -115,7 +121,13 @@ def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float]
             )
         if isinstance(lam, bool) or not isinstance(lam, numbers.Real) or not float(lam) > 0:
             raise GraphInputError(f"max_eigenvalue must be a number > 0; got {lam!r}")
-        low, high = 0.0, float(lam)
+        if isinstance(min_eigenvalue, bool) or not isinstance(min_eigenvalue, numbers.Real) \
+                or not float(min_eigenvalue) < float(lam):
+            raise GraphInputError(
+                f"min_eigenvalue must be a number below max_eigenvalue {float(lam):.6g} (the lower end of "
+                f"the operator's spectrum interval, op.spectrum[0]); got {min_eigenvalue!r}"
+            )
+        low, high = float(min_eigenvalue), float(lam)
         charges, groups = None, 1
     else:
         raise GraphInputError(
@@ -141,7 +153,7 @@ def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float]
     if isinstance(layer, MagneticFilter):
         scaled = lam_values - 1.0
     else:
-        scaled = 2.0 * lam_values / high - 1.0
+        scaled = 2.0 * (lam_values - low) / (high - low) - 1.0
     w = _weights(layer)  # (K + 1, C_in, C_out)
     T = _chebyshev_values(scaled, w.shape[0] - 1).to(w.dtype)  # (K + 1, P)
     gains = torch.einsum("kp,kio->pio", T, w)  # (P, C_in, C_out)
@@ -151,7 +163,8 @@ def filter_response(layer, points: Any = 256, *, max_eigenvalue: Optional[float]
     return FilterResponse(lam_values, gains, norm, charges, (low, high))
 
 
-def plot_filter_response(layer, path, points: int = 256, *, max_eigenvalue: Optional[float] = None) -> str:
+def plot_filter_response(layer, path, points: int = 256, *, max_eigenvalue: Optional[float] = None,
+                         min_eigenvalue: float = 0.0) -> str:
     """Write a PNG of :func:`filter_response`: gain norm against eigenvalue, one panel per charge group.
 
     Thin lines show the modulus of each (input, output) pair's gain when there are at most 64
@@ -164,7 +177,7 @@ def plot_filter_response(layer, path, points: int = 256, *, max_eigenvalue: Opti
         >>> out.endswith("r.png")
         True
     """
-    response = filter_response(layer, points, max_eigenvalue=max_eigenvalue)
+    response = filter_response(layer, points, max_eigenvalue=max_eigenvalue, min_eigenvalue=min_eigenvalue)
     try:
         import matplotlib
 

@@ -4,11 +4,15 @@ Usage::
 
     python -m phasorgraph.scan EDGES.csv --source COL --target COL [--weight COL]
         --labels LABELS.csv --id COL --label COL [--features COLS] [--out DIR]
+        [--weight-transform log1p|rank|none] [--phase difference|sign|relative]
 
 Reads the edges (one row per edge, ids of any kind) and a node table with the labels (and,
 with ``--features a,b``, numeric node features), runs :func:`phasorgraph.scan_charges`,
 prints the table and the verdict, and writes ``charge_scan.png`` and ``charge_scan.json``
-into ``--out`` (default: the current folder). Exit status 0 on success, 2 on bad input (the
+into ``--out`` (default: the current folder). With ``--weight``, each pair's summed weight
+is taken through ``log1p`` and the phase is "relative" unless ``--weight-transform`` /
+``--phase`` say otherwise (the unit-free defaults measured best on heavy-tailed amounts in
+bench/phase_weights.py). Exit status 0 on success, 2 on bad input (the
 message names the file and the column).
 """
 
@@ -50,9 +54,12 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--regression", action="store_true",
                    help="the label is a number to predict (ridge regression, R^2) rather than a class")
     p.add_argument("--out", default=".", help="folder for charge_scan.png and charge_scan.json (default: .)")
+    p.add_argument("--weight-transform", choices=("log1p", "rank", "none"), default=None,
+                   help='transform of each pair\'s summed weight (default "log1p" with --weight: heavy-tailed '
+                        'amounts otherwise drown the structure, see bench/phase_weights.py)')
     p.add_argument("--phase", choices=("difference", "sign", "relative"), default=None,
-                   help='magnetic phase (default "sign" with --weight, whose large values would wrap the '
-                        '"difference" phase, else "difference")')
+                   help='magnetic phase (default "relative" with --weight, which no unit of the weights can '
+                        'wrap, else "difference")')
     p.add_argument("--charges", default=None, help="comma-separated charges in [0, 0.5] (default: 0 to 0.25)")
     p.add_argument("--order", type=int, default=4, help="Chebyshev order (default 4)")
     p.add_argument("--folds", type=int, default=5, help="cross-validation folds (default 5)")
@@ -75,7 +82,9 @@ def _run(args) -> int:
         if not os.path.isfile(path):
             raise GraphInputError(f"{role}: no file at {path!r}")
     try:
-        graph = DirectedGraph.from_table(edges_file, source=args.source, target=args.target, weight=args.weight)
+        transform = args.weight_transform or ("log1p" if args.weight else "none")
+        graph = DirectedGraph.from_table(edges_file, source=args.source, target=args.target, weight=args.weight,
+                                         weight_transform=None if transform == "none" else transform)
     except GraphInputError as err:
         raise GraphInputError(f"{edges_file}: {err}") from None
     try:
@@ -110,7 +119,7 @@ def _run(args) -> int:
     if labelled == 0:
         raise GraphInputError(f"{labels_file}: label column {args.label!r} holds no label for any node of the "
                               f"graph in {edges_file} (check --id and --label)")
-    phase = args.phase or ("sign" if args.weight else "difference")
+    phase = args.phase or ("relative" if args.weight else "difference")
     charges = None if args.charges is None else [float(q) for q in _split(args.charges)]
     try:
         result = scan_charges(graph, x, y, charges=charges, order=args.order, folds=args.folds, repeats=args.repeats,
@@ -125,7 +134,7 @@ def _run(args) -> int:
     os.makedirs(args.out, exist_ok=True)
     record = result.to_dict()
     record["inputs"] = {"edges": edges_file, "labels": labels_file, "source": args.source, "target": args.target,
-                        "weight": args.weight, "id": args.id, "label": args.label, "features": columns,
+                        "weight": args.weight, "weight_transform": transform, "phase": phase, "id": args.id, "label": args.label, "features": columns,
                         "classes": None if classes is None else [str(c) for c in np.asarray(classes).tolist()]}
     json_path = os.path.join(args.out, "charge_scan.json")
     with open(json_path, "w") as fh:
