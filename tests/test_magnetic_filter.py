@@ -5,6 +5,7 @@ D^-1/2 written in NumPy (Zhang et al. 2021; src/phasorgraph/operators.py) with n
 numpy.polynomial.chebyshev.chebval on its eigenvalues (tests/layer_specs.py).
 """
 
+import datetime
 import os
 
 import numpy as np
@@ -165,7 +166,9 @@ def test_ddp_can_wrap_the_layer(tmp_path):
 
     if not dist.is_available():
         pytest.skip("torch.distributed is not built in this torch")
-    dist.init_process_group("gloo", init_method=f"file://{os.path.join(tmp_path, 'store')}", rank=0, world_size=1)
+    # a bounded timeout: a stuck store or collective fails the test instead of hanging the suite
+    dist.init_process_group("gloo", init_method=f"file://{os.path.join(tmp_path, 'store')}", rank=0, world_size=1,
+                            timeout=datetime.timedelta(seconds=60))
     try:
         g, _ = reference_graph()
         layer = MagneticFilter(3, 4, order=2, charge=LearnedCharge(start=0.02))
