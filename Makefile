@@ -34,9 +34,7 @@ test: $(STAMP)
 	$(PY) -m pytest -q
 
 bench: $(STAMP)
-	$(PY) bench/kernels.py
-	$(PY) bench/layers.py
-	$(PY) bench/scattering.py
+	for script in bench/[!_]*.py; do echo "== $$script"; $(PY) $$script || exit 1; done
 
 clean:
 	rm -rf $(VENV) build src/*.egg-info .pytest_cache .hypothesis

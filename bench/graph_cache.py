@@ -67,7 +67,10 @@ def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--snapshots", type=int, default=12)
     parser.add_argument("--edges", type=int, default=200_000)
+    parser.add_argument("--quick", action="store_true", help="3 snapshots of 5000 edges (a few seconds)")
     args = parser.parse_args(argv)
+    if args.quick:
+        args.snapshots, args.edges = 3, 5_000
     torch.set_num_threads(1)
     ours = run(args.snapshots, args.edges, keep_graphs=False)
     baseline = run(args.snapshots, args.edges, keep_graphs=True)
@@ -79,7 +82,7 @@ def main(argv=None) -> None:
                 title=f"resident memory growth over {args.snapshots} snapshots of {args.edges} edges")
     print(f"after the last snapshot: {final['kept with graph MB']:.1f} MB against {final['graphs held MB']:.1f} MB"
           f" when the graphs are held (ratio {final['ratio']:.3f})" if final["ratio"] is not None else "")
-    write_results("graph_cache", {"snapshots": args.snapshots, "edges": args.edges, "rows": rows, "final": final},
+    write_results("graph_cache_quick" if args.quick else "graph_cache", {"snapshots": args.snapshots, "edges": args.edges, "rows": rows, "final": final},
                   argv=sys.argv)
 
 

@@ -41,7 +41,7 @@ from _common import print_table, write_results  # noqa: E402
 
 from phasorgraph import DirectedGraph, operators  # noqa: E402
 from phasorgraph.nn import DiffusionScattering, DiffusionWavelets  # noqa: E402
-from phasorgraph.nn.wavelets import _diffusion_powers, _dyadic_bands  # noqa: E402
+from phasorgraph.nn._diffusion import diffusion_powers as _diffusion_powers, dyadic_bands as _dyadic_bands  # noqa: E402
 
 DENSE_LIMIT = 4096
 
