@@ -282,7 +282,7 @@ def measure(num_edges: int, repeats: int, seed: int = 0, with_baseline: bool = T
             "model_MiB": model / 2**20,
             "peak_over_model": None if mem_pkg is None else mem_pkg / model,
             "baseline_peak_MiB": None if mem_user is None else mem_user / 2**20,
-            "memory_ratio": None if (mem_user is None or mem_pkg is None) else mem_user / mem_pkg,
+            "memory_ratio": None if (mem_user is None or not mem_pkg) else mem_user / mem_pkg,
             "repeats": t_pkg["repeats"],
         })
         del layer, op
