@@ -25,7 +25,8 @@ Sections:
    warm (cache on disk), for ``import phasorgraph`` plus the first complex product.
 
 Usage: ``python bench/kernels.py [--quick] [--threads 2] [--max-edges 1e7]``; writes
-bench/results/kernels.json (``--quick``: kernels_quick.json, small sizes, a few seconds).
+bench/results/kernels.json (kernels_<T>thread.json for other thread counts; ``--quick``: a
+``_quick`` name, small sizes, a few seconds).
 """
 
 from __future__ import annotations
@@ -259,7 +260,8 @@ def main(argv=None) -> None:
         "slope_1e5_1e7": slope,
     }
     print("targets:", {k: round(v, 3) for k, v in targets.items()})
-    write_results("kernels_quick" if quick else "kernels", {
+    name = "kernels" if args.threads == 2 else f"kernels_{args.threads}thread"
+    write_results(name + "_quick" if quick else name, {
         "description": __doc__.splitlines()[0], "features": F, "dtype": str(DTYPE), "threads": args.threads,
         "copy_bandwidth_bytes_per_s": copy_bw, "copy_bandwidth_before_after": [bw_before, bw_after],
         "load_average_1m_before_after": [load_before, os.getloadavg()[0]],

@@ -297,12 +297,15 @@ def main(argv=None) -> None:
     parser.add_argument("--budget", type=float, default=600.0,
                         help="seconds for the whole run; a size predicted to overrun it is skipped (default 600)")
     parser.add_argument("--threads", type=int, default=2, help="torch intra-op threads (default 2)")
+    parser.add_argument("--edges", type=float, nargs="*", help="edge counts to run instead of the default grid")
     args = parser.parse_args(argv)
     torch.set_num_threads(args.threads)
     if args.quick:
         sizes, repeats = [5_000], 2
     else:
         sizes = [e for e in (20_000, 200_000, 2_000_000) if e <= args.max_edges]
+        if args.edges:
+            sizes = [int(e) for e in args.edges]
         repeats = 3
     rows, skipped = [], []
     t0 = time.perf_counter()
