@@ -73,14 +73,15 @@ def renormalized_adjacency(A: np.ndarray) -> np.ndarray:
     return s[:, None] * As * s[None, :]
 
 
-def chebyshev_filter(L: np.ndarray, x: np.ndarray, W: np.ndarray, max_eigenvalue: float) -> np.ndarray:
-    """sum_k U T_k(2 lam / max_eigenvalue - 1) U^H x W_k, evaluated on the eigenvalues.
+def chebyshev_filter(L: np.ndarray, x: np.ndarray, W: np.ndarray, max_eigenvalue: float,
+                     min_eigenvalue: float = 0.0) -> np.ndarray:
+    """sum_k U T_k(2 (lam - a) / (max_eigenvalue - a) - 1) U^H x W_k on the eigenvalues, a = min_eigenvalue.
 
     Source: numpy.linalg.eigh for L = U diag(lam) U^H and numpy.polynomial.chebyshev.chebval for
     T_k (the coefficient vector e_k), independent of the layer's three-term recursion.
     """
     lam, U = np.linalg.eigh(L)
-    t = 2 * lam / max_eigenvalue - 1
+    t = 2 * (lam - min_eigenvalue) / (max_eigenvalue - min_eigenvalue) - 1
     xh = U.conj().T @ x
     out = 0
     for k in range(W.shape[0]):
