@@ -12,15 +12,14 @@ timeout, the parent waits at most 120 s and kills its children on any failure.
 
 import datetime
 import os
-import time
 
 import pytest
 import torch
 import torch.distributed as dist
-import torch.multiprocessing as mp
 from torch import nn
 
 from phasorgraph import DirectedGraph
+from ranks import run_ranks
 from phasorgraph.data import GraphBatch, directed_block_model, random_out_graph
 from phasorgraph.nn import LearnedCharge, MagneticFilter
 from phasorgraph.learned_charge import magnetic_matmul
@@ -149,17 +148,7 @@ def reference(name: str):
 
 def run_workers(tmp_path, timeout_s: float = 120.0):
     init_file = str(tmp_path / "rendezvous")
-    ctx = mp.start_processes(_worker, args=(init_file, str(tmp_path)), nprocs=WORLD, join=False, start_method="spawn")
-    deadline = time.monotonic() + timeout_s
-    try:
-        while not ctx.join(timeout=0.5):
-            if time.monotonic() > deadline:
-                pytest.fail(f"distributed workers did not finish within {timeout_s} s")
-    finally:
-        for p in ctx.processes:  # only our own children, by handle
-            if p.is_alive():
-                p.kill()
-                p.join(5)
+    run_ranks(_worker, (init_file, str(tmp_path)), WORLD, start_method="spawn", timeout_s=timeout_s)
     return [torch.load(tmp_path / f"rank{r}.pt") for r in range(WORLD)]
 
 

@@ -23,7 +23,6 @@ import io
 import os
 import runpy
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -35,6 +34,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from phasorgraph import DirectedGraph, GraphInputError
+from ranks import run_ranks
 from phasorgraph import operators as O
 from phasorgraph.distributed import GraphShard, NodePartition, partition_nodes
 from phasorgraph.nn import (ChebyshevFilter, DiffusionScattering, DiffusionWavelets, LearnedCharge, MagneticFilter,
@@ -350,18 +350,8 @@ def run_world(world: int, tmp_path, timeout_s: float = 240.0) -> list:
     q = torch.tensor(0.1, dtype=F64, requires_grad=True)
     g.magnetic_product(q)(features(g.num_nodes)).abs().sum().backward()
 
-    ctx = mp.start_processes(_worker, args=(world, str(tmp_path / "rendezvous"), str(tmp_path)), nprocs=world,
-                             join=False, start_method=START_METHOD)
-    deadline = time.monotonic() + timeout_s
-    try:
-        while not ctx.join(timeout=0.5):
-            if time.monotonic() > deadline:
-                pytest.fail(f"{world} distributed workers did not finish within {timeout_s} s")
-    finally:
-        for p in ctx.processes:  # only our own children, by handle
-            if p.is_alive():
-                p.kill()
-                p.join(5)
+    run_ranks(_worker, (world, str(tmp_path / "rendezvous"), str(tmp_path)), world, start_method=START_METHOD,
+              timeout_s=timeout_s)
     return [torch.load(tmp_path / f"rank{r}.pt", weights_only=False) for r in range(world)]
 
 
