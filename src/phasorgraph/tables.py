@@ -25,6 +25,7 @@ whatever is learned from it describe them too: keep such tables as protected as 
 
 from __future__ import annotations
 
+import importlib
 import numbers
 import os
 from typing import Any, Callable, Mapping, NamedTuple, Optional, Sequence
@@ -48,26 +49,15 @@ def _show(value) -> str:
 
 
 # ---------------------------------------------------------------------- optional imports
-def _pandas(why: str):
+def _optional(module: str, package: str, why: str):
+    """Import an optional dependency of the ``tables`` extra, or say how to install it."""
     try:
-        import pandas
+        return importlib.import_module(module)
     except ImportError as exc:  # pragma: no cover - depends on the environment
         raise GraphInputError(
-            f"{why} needs pandas, which is not installed; install the optional extra: "
+            f"{why} needs {package}, which is not installed; install the optional extra: "
             f'pip install "phasorgraph[tables]"'
         ) from exc
-    return pandas
-
-
-def _pyarrow_parquet(why: str):
-    try:
-        import pyarrow.parquet as pq
-    except ImportError as exc:  # pragma: no cover - depends on the environment
-        raise GraphInputError(
-            f"{why} needs pyarrow, which is not installed; install the optional extra: "
-            f'pip install "phasorgraph[tables]"'
-        ) from exc
-    return pq
 
 
 def _has_pandas() -> bool:
@@ -115,7 +105,7 @@ def _read_file(path, wanted: Optional[list]):
     if not os.path.isfile(text):
         raise GraphInputError(f"table must be a table or the path of an existing file; no file at {text!r}")
     if low.endswith(_PARQUET_SUFFIXES):
-        pq = _pyarrow_parquet(f"reading the Parquet file {text!r}")
+        pq = _optional("pyarrow.parquet", "pyarrow", f"reading the Parquet file {text!r}")
         try:
             schema_names = list(pq.read_schema(text).names)
             keep = None if wanted is None else [c for c in wanted if c in schema_names]
@@ -125,7 +115,7 @@ def _read_file(path, wanted: Optional[list]):
         except Exception as exc:
             raise GraphInputError(f"table: could not read the Parquet file {text!r}: {exc}") from exc
     if low.endswith(_CSV_SUFFIXES):
-        pd = _pandas(f"reading the CSV file {text!r}")
+        pd = _optional("pandas", "pandas", f"reading the CSV file {text!r}")
         sep = "\t" if ".tsv" in low else ","
         try:
             header = list(pd.read_csv(text, sep=sep, nrows=0).columns)
