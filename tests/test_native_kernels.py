@@ -92,6 +92,43 @@ def test_fused_product_matches_dense_and_reference(vc, xc, hermitian, with_z):
         torch.testing.assert_close(a, b, rtol=1e-12, atol=1e-12)
 
 
+# Feature widths that reach every tile path of the kernels (_native.TILE = 64 and HALF = 32
+# real columns per register tile, then a remainder): complex x has 2F real columns.
+WIDTHS = [1, 17, 32, 48, 64, 97, 130]
+
+
+@pytest.mark.parametrize("vc,xc", [(False, False), (False, True), (True, False), (True, True)])
+@pytest.mark.parametrize("width", WIDTHS)
+@pytest.mark.parametrize("dtype", [torch.float64, torch.float32])
+def test_every_tile_width_matches_dense_and_reference(vc, xc, width, dtype):
+    dense = _dense(N, vc, hermitian=False, seed=21)
+    alpha, shift, beta = 0.7, -1.3, 2.0
+    x = _features((N, width), xc, seed=22, dtype=dtype).requires_grad_()
+    out_complex = vc or xc
+    z = _features((N, width), out_complex, seed=23, dtype=dtype).requires_grad_()
+    tol = dict(rtol=1e-12, atol=1e-12) if dtype == torch.float64 else dict(rtol=2e-5, atol=2e-5)
+    results = {}
+    for native in (True, False):
+        with native_kernels(native):
+            op, values = _pattern_operator(dense, hermitian=False, requires_grad=True, dtype=dtype)
+            y = op.matmul_add(x, z, alpha=alpha, beta=beta, shift=shift)
+            w = _features(y.shape, out_complex, seed=24, dtype=dtype)
+            (w.conj() * y).real.sum().backward() if out_complex else (w * y).sum().backward()
+            results[native] = (y.detach(), [values.grad.clone(), x.grad.clone(), z.grad.clone()])
+            x.grad = None
+            z.grad = None
+    # reference: numpy.einsum of the dense matrix (in float64) plus the epilogue
+    xd, zd = x.detach().numpy().astype(np.complex128), z.detach().numpy().astype(np.complex128)
+    want = alpha * np.einsum("uv,vf->uf", dense, xd) + shift * xd + beta * zd
+    got = results[True][0].numpy()
+    np.testing.assert_allclose(got, want if out_complex else want.real, **tol)
+    # reference: the pure-torch path, forward and every gradient (the transposed product,
+    # the real-part product of a real x's gradient and the value gradient)
+    torch.testing.assert_close(results[True][0], results[False][0], **tol)
+    for a, b in zip(results[True][1], results[False][1]):
+        torch.testing.assert_close(a, b, **tol)
+
+
 @pytest.mark.parametrize("vc,xc,hermitian", CASES)
 @pytest.mark.parametrize("native", [True, False])
 def test_custom_op_gradcheck(vc, xc, hermitian, native):

@@ -36,7 +36,9 @@ if "NUMBA_THREADING_LAYER" not in os.environ:
     os.environ["NUMBA_THREADING_LAYER"] = "workqueue"
 
 import numba  # noqa: E402
-from numba import njit, prange  # noqa: E402
+from numba import njit, prange, types  # noqa: E402
+from numba.core import cgutils  # noqa: E402
+from numba.extending import intrinsic  # noqa: E402
 
 __all__ = [
     "csr_real",
@@ -87,92 +89,196 @@ def row_blocks(crow: np.ndarray, threads: int) -> np.ndarray:
     return np.concatenate(([0], inner, [n])).astype(np.int64)
 
 
+# ---------------------------------------------------------------------- register tiles
+# Every product walks a row's non-zeros once per tile of TILE feature columns and keeps the
+# tile's accumulators in registers: with AVX2 a tile of 64 float32 is 8 vector registers (16
+# for the two accumulators of a complex matrix), so each gathered x element costs one load and
+# one or two FMAs, with no load/store of an accumulator per non-zero. The accumulators are
+# fixed-size stack blocks (:func:`_stack_block`) that are only ever indexed by constants after
+# unrolling, which lets LLVM keep them in registers; widths that are not a multiple of TILE take
+# a tile of HALF, then a heap block for the last (< HALF) columns. Offsets are unsigned
+# (``np.uint64``), so no negative-index wraparound code stands in the way of vector loads.
+TILE = 64
+HALF = 32
+
+
+@intrinsic
+def _stack_block(typingctx, like, size):
+    """A pointer to ``size`` (a literal int) elements of ``like``'s dtype on the function's stack."""
+    if not isinstance(size, types.IntegerLiteral):
+        return None
+    count = size.literal_value
+    dtype = like.dtype
+
+    def codegen(context, builder, signature, args):
+        return cgutils.alloca_once(builder, context.get_value_type(dtype), size=count)
+
+    return types.CPointer(dtype)(like, size), codegen
+
+
+@njit(inline="always")
+def _acc_real(a, x1, col, val, k0, k1, uw, uf0, t):  # pragma: no cover - compiled
+    """a[f] = sum_k val[k] x[col[k], f0 + f] for f < t over the non-zeros k0..k1 of one row."""
+    for f in range(t):
+        a[f] = 0
+    for k in range(k0, k1):
+        v = val[k]
+        base = np.uint64(col[k]) * uw + uf0
+        for f in range(t):
+            a[f] += v * x1[base + np.uint64(f)]
+
+
+@njit(inline="always")
+def _acc_pair(a, d, x1, col, vre, vim, k0, k1, uw, uf0, t):  # pragma: no cover - compiled
+    """a = sum_k vre[k] x[col[k], tile], d = sum_k vim[k] x[col[k], tile] (one load of each x)."""
+    for f in range(t):
+        a[f] = 0
+        d[f] = 0
+    for k in range(k0, k1):
+        vr = vre[k]
+        vi = vim[k]
+        base = np.uint64(col[k]) * uw + uf0
+        for f in range(t):
+            xv = x1[base + np.uint64(f)]
+            a[f] += vr * xv
+            d[f] += vi * xv
+
+
+@njit(inline="always")
+def _put_real(a, o1, ob, t, alpha):  # pragma: no cover - compiled
+    for f in range(t):
+        o1[ob + np.uint64(f)] = alpha * a[f]
+
+
+@njit(inline="always")
+def _put_complex(a, d, o1, ob, t, alpha):  # pragma: no cover - compiled
+    """Interleaved complex x: (a_re - d_im, a_im + d_re) per complex column."""
+    for f in range(t // 2):
+        o1[ob + np.uint64(2 * f)] = alpha * (a[2 * f] - d[2 * f + 1])
+        o1[ob + np.uint64(2 * f + 1)] = alpha * (a[2 * f + 1] + d[2 * f])
+
+
+@njit(inline="always")
+def _put_complex_real_x(a, d, o1, ob, t, alpha):  # pragma: no cover - compiled
+    """Real x: the complex result of column f is (a[f], d[f]); ob is the output offset of column 0."""
+    for f in range(t):
+        o1[ob + np.uint64(2 * f)] = alpha * a[f]
+        o1[ob + np.uint64(2 * f + 1)] = alpha * d[f]
+
+
+@njit(inline="always")
+def _put_real_part(a, d, o1, ob, t, alpha):  # pragma: no cover - compiled
+    """Re of the complex result: a_re - d_im per complex column (t // 2 outputs)."""
+    for f in range(t // 2):
+        o1[ob + np.uint64(f)] = alpha * (a[2 * f] - d[2 * f + 1])
+
+
+@njit(inline="always")
+def _epilogue(x1, z1, o1, ob, w, shift, beta, use_z):  # pragma: no cover - compiled
+    """out_row += shift * x_row + beta * z_row (same width w), on the row just written (in L1)."""
+    if use_z:
+        for f in range(w):
+            p = ob + np.uint64(f)
+            o1[p] += shift * x1[p] + beta * z1[p]
+    elif shift != 0:
+        for f in range(w):
+            p = ob + np.uint64(f)
+            o1[p] += shift * x1[p]
+
+
+@njit(inline="always")
+def _tile_ends(w):  # pragma: no cover - compiled
+    """Ends of the TILE-wide and of the HALF-wide tiles of a row of width w."""
+    w64 = w - w % TILE
+    return w64, w64 + (w - w64) // HALF * HALF
+
+
 # ---------------------------------------------------------------------- products
 @njit(**_SPMM)
 def csr_real(bounds, crow, col, val, x, z, out, alpha, shift, beta, use_z):  # pragma: no cover - compiled
     """out = alpha * A x + shift * x + beta * z; real A (val), real (N, W) x, z, out."""
     w = x.shape[1]
+    x1, z1, o1 = x.reshape(-1), z.reshape(-1), out.reshape(-1)
+    uw = np.uint64(w)
+    w64, w32 = _tile_ends(w)
     for b in prange(bounds.shape[0] - 1):
-        acc = np.empty(w, dtype=out.dtype)
+        a = numba.carray(_stack_block(out, TILE), TILE)
+        rest = np.empty(HALF, dtype=out.dtype)
         for i in range(bounds[b], bounds[b + 1]):
-            for f in range(w):
-                acc[f] = 0
-            for k in range(crow[i], crow[i + 1]):
-                v = alpha * val[k]
-                c = col[k]
-                for f in range(w):
-                    acc[f] += v * x[c, f]
-            if use_z:
-                for f in range(w):
-                    out[i, f] = acc[f] + shift * x[i, f] + beta * z[i, f]
-            elif shift != 0:
-                for f in range(w):
-                    out[i, f] = acc[f] + shift * x[i, f]
-            else:
-                for f in range(w):
-                    out[i, f] = acc[f]
+            k0, k1 = np.uint64(crow[i]), np.uint64(crow[i + 1])
+            ob = np.uint64(i) * uw
+            for f0 in range(0, w64, TILE):
+                _acc_real(a, x1, col, val, k0, k1, uw, np.uint64(f0), TILE)
+                _put_real(a, o1, ob + np.uint64(f0), TILE, alpha)
+            if w32 > w64:
+                _acc_real(a, x1, col, val, k0, k1, uw, np.uint64(w64), HALF)
+                _put_real(a, o1, ob + np.uint64(w64), HALF, alpha)
+            if w > w32:
+                _acc_real(rest, x1, col, val, k0, k1, uw, np.uint64(w32), w - w32)
+                _put_real(rest, o1, ob + np.uint64(w32), w - w32, alpha)
+            _epilogue(x1, z1, o1, ob, w, shift, beta, use_z)
 
 
 @njit(**_SPMM)
 def csr_complex(bounds, crow, col, vre, vim, x, z, out, alpha, shift, beta, use_z):  # pragma: no cover
     """Complex A = vre + i vim times complex x, all complex blocks interleaved (N, 2F)."""
     w = x.shape[1]
-    h = w // 2
+    x1, z1, o1 = x.reshape(-1), z.reshape(-1), out.reshape(-1)
+    uw = np.uint64(w)
+    w64, w32 = _tile_ends(w)
     for b in prange(bounds.shape[0] - 1):
-        a = np.empty(w, dtype=out.dtype)
-        d = np.empty(w, dtype=out.dtype)
+        a = numba.carray(_stack_block(out, TILE), TILE)
+        d = numba.carray(_stack_block(out, TILE), TILE)
+        ra = np.empty(HALF, dtype=out.dtype)
+        rd = np.empty(HALF, dtype=out.dtype)
         for i in range(bounds[b], bounds[b + 1]):
-            for f in range(w):
-                a[f] = 0
-                d[f] = 0
-            for k in range(crow[i], crow[i + 1]):
-                vr = alpha * vre[k]
-                vi = alpha * vim[k]
-                c = col[k]
-                for f in range(w):
-                    xv = x[c, f]
-                    a[f] += vr * xv
-                    d[f] += vi * xv
-            for f in range(h):
-                re = a[2 * f] - d[2 * f + 1]
-                im = a[2 * f + 1] + d[2 * f]
-                if use_z:
-                    re += shift * x[i, 2 * f] + beta * z[i, 2 * f]
-                    im += shift * x[i, 2 * f + 1] + beta * z[i, 2 * f + 1]
-                elif shift != 0:
-                    re += shift * x[i, 2 * f]
-                    im += shift * x[i, 2 * f + 1]
-                out[i, 2 * f] = re
-                out[i, 2 * f + 1] = im
+            k0, k1 = np.uint64(crow[i]), np.uint64(crow[i + 1])
+            ob = np.uint64(i) * uw
+            for f0 in range(0, w64, TILE):
+                _acc_pair(a, d, x1, col, vre, vim, k0, k1, uw, np.uint64(f0), TILE)
+                _put_complex(a, d, o1, ob + np.uint64(f0), TILE, alpha)
+            if w32 > w64:
+                _acc_pair(a, d, x1, col, vre, vim, k0, k1, uw, np.uint64(w64), HALF)
+                _put_complex(a, d, o1, ob + np.uint64(w64), HALF, alpha)
+            if w > w32:
+                _acc_pair(ra, rd, x1, col, vre, vim, k0, k1, uw, np.uint64(w32), w - w32)
+                _put_complex(ra, rd, o1, ob + np.uint64(w32), w - w32, alpha)
+            _epilogue(x1, z1, o1, ob, w, shift, beta, use_z)
 
 
 @njit(**_SPMM)
 def csr_complex_real_x(bounds, crow, col, vre, vim, x, z, out, alpha, shift, beta, use_z):  # pragma: no cover
     """Complex A times real x (N, F): out (and z) interleaved complex (N, 2F)."""
     w = x.shape[1]
+    x1, z1, o1 = x.reshape(-1), z.reshape(-1), out.reshape(-1)
+    uw, uw2 = np.uint64(w), np.uint64(2 * w)
+    w64, w32 = _tile_ends(w)
     for b in prange(bounds.shape[0] - 1):
-        a = np.empty(w, dtype=out.dtype)
-        d = np.empty(w, dtype=out.dtype)
+        a = numba.carray(_stack_block(out, TILE), TILE)
+        d = numba.carray(_stack_block(out, TILE), TILE)
+        ra = np.empty(HALF, dtype=out.dtype)
+        rd = np.empty(HALF, dtype=out.dtype)
         for i in range(bounds[b], bounds[b + 1]):
-            for f in range(w):
-                a[f] = 0
-                d[f] = 0
-            for k in range(crow[i], crow[i + 1]):
-                vr = alpha * vre[k]
-                vi = alpha * vim[k]
-                c = col[k]
+            k0, k1 = np.uint64(crow[i]), np.uint64(crow[i + 1])
+            ob = np.uint64(i) * uw2
+            for f0 in range(0, w64, TILE):
+                _acc_pair(a, d, x1, col, vre, vim, k0, k1, uw, np.uint64(f0), TILE)
+                _put_complex_real_x(a, d, o1, ob + np.uint64(2 * f0), TILE, alpha)
+            if w32 > w64:
+                _acc_pair(a, d, x1, col, vre, vim, k0, k1, uw, np.uint64(w64), HALF)
+                _put_complex_real_x(a, d, o1, ob + np.uint64(2 * w64), HALF, alpha)
+            if w > w32:
+                _acc_pair(ra, rd, x1, col, vre, vim, k0, k1, uw, np.uint64(w32), w - w32)
+                _put_complex_real_x(ra, rd, o1, ob + np.uint64(2 * w32), w - w32, alpha)
+            xb = np.uint64(i) * uw
+            if use_z:
                 for f in range(w):
-                    xv = x[c, f]
-                    a[f] += vr * xv
-                    d[f] += vi * xv
-            for f in range(w):
-                re = a[f] + shift * x[i, f]
-                im = d[f]
-                if use_z:
-                    re += beta * z[i, 2 * f]
-                    im += beta * z[i, 2 * f + 1]
-                out[i, 2 * f] = re
-                out[i, 2 * f + 1] = im
+                    p = ob + np.uint64(2 * f)
+                    o1[p] += shift * x1[xb + np.uint64(f)] + beta * z1[p]
+                    o1[p + np.uint64(1)] += beta * z1[p + np.uint64(1)]
+            elif shift != 0:
+                for f in range(w):
+                    o1[ob + np.uint64(2 * f)] += shift * x1[xb + np.uint64(f)]
 
 
 @njit(**_SPMM)
@@ -182,24 +288,30 @@ def csr_complex_real_part(bounds, crow, col, vre, vim, g, out, alpha, shift):  #
     The gradient of a real x under a complex product.
     """
     w = g.shape[1]
-    h = w // 2
+    g1, o1 = g.reshape(-1), out.reshape(-1)
+    uw, uh = np.uint64(w), np.uint64(w // 2)
+    w64, w32 = _tile_ends(w)
     for b in prange(bounds.shape[0] - 1):
-        a = np.empty(w, dtype=out.dtype)
-        d = np.empty(w, dtype=out.dtype)
+        a = numba.carray(_stack_block(out, TILE), TILE)
+        d = numba.carray(_stack_block(out, TILE), TILE)
+        ra = np.empty(HALF, dtype=out.dtype)
+        rd = np.empty(HALF, dtype=out.dtype)
         for i in range(bounds[b], bounds[b + 1]):
-            for f in range(w):
-                a[f] = 0
-                d[f] = 0
-            for k in range(crow[i], crow[i + 1]):
-                vr = alpha * vre[k]
-                vi = alpha * vim[k]
-                c = col[k]
-                for f in range(w):
-                    gv = g[c, f]
-                    a[f] += vr * gv
-                    d[f] += vi * gv
-            for f in range(h):
-                out[i, f] = a[2 * f] - d[2 * f + 1] + shift * g[i, 2 * f]
+            k0, k1 = np.uint64(crow[i]), np.uint64(crow[i + 1])
+            ob = np.uint64(i) * uh
+            for f0 in range(0, w64, TILE):
+                _acc_pair(a, d, g1, col, vre, vim, k0, k1, uw, np.uint64(f0), TILE)
+                _put_real_part(a, d, o1, ob + np.uint64(f0 // 2), TILE, alpha)
+            if w32 > w64:
+                _acc_pair(a, d, g1, col, vre, vim, k0, k1, uw, np.uint64(w64), HALF)
+                _put_real_part(a, d, o1, ob + np.uint64(w64 // 2), HALF, alpha)
+            if w > w32:
+                _acc_pair(ra, rd, g1, col, vre, vim, k0, k1, uw, np.uint64(w32), w - w32)
+                _put_real_part(ra, rd, o1, ob + np.uint64(w32 // 2), w - w32, alpha)
+            if shift != 0:
+                gb = np.uint64(i) * uw
+                for f in range(w // 2):
+                    o1[ob + np.uint64(f)] += shift * g1[gb + np.uint64(2 * f)]
 
 
 # ---------------------------------------------------------------------- value gradients
@@ -207,31 +319,36 @@ def csr_complex_real_part(bounds, crow, col, vre, vim, g, out, alpha, shift):  #
 def value_grad_real(bounds, crow, col, g, x, out, alpha):  # pragma: no cover
     """out[k] = alpha * sum_f g[r_k, f] * x[c_k, f] (real blocks; Re(g x^H) for interleaved complex)."""
     w = x.shape[1]
+    g1, x1 = g.reshape(-1), x.reshape(-1)
+    uw = np.uint64(w)
     for b in prange(bounds.shape[0] - 1):
         for i in range(bounds[b], bounds[b + 1]):
-            for k in range(crow[i], crow[i + 1]):
-                c = col[k]
-                s = alpha * 0
+            gb = np.uint64(i) * uw
+            for k in range(np.uint64(crow[i]), np.uint64(crow[i + 1])):
+                xb = np.uint64(col[k]) * uw
+                s = alpha - alpha
                 for f in range(w):
-                    s += g[i, f] * x[c, f]
+                    s += g1[gb + np.uint64(f)] * x1[xb + np.uint64(f)]
                 out[k] = alpha * s
 
 
 @njit(**_REDUCE)
 def value_grad_complex(bounds, crow, col, g, x, out_re, out_im, alpha):  # pragma: no cover
     """alpha * sum_f g[r_k, f] conj(x[c_k, f]) for interleaved complex g, x (N, 2F)."""
-    h = x.shape[1] // 2
+    w = x.shape[1]
+    g1, x1 = g.reshape(-1), x.reshape(-1)
+    uw = np.uint64(w)
     for b in prange(bounds.shape[0] - 1):
         for i in range(bounds[b], bounds[b + 1]):
-            for k in range(crow[i], crow[i + 1]):
-                c = col[k]
-                sr = alpha * 0
-                si = alpha * 0
-                for f in range(h):
-                    gr = g[i, 2 * f]
-                    gi = g[i, 2 * f + 1]
-                    xr = x[c, 2 * f]
-                    xi = x[c, 2 * f + 1]
+            gb = np.uint64(i) * uw
+            for k in range(np.uint64(crow[i]), np.uint64(crow[i + 1])):
+                xb = np.uint64(col[k]) * uw
+                sr = alpha - alpha
+                si = alpha - alpha
+                for f in range(w // 2):
+                    p, q = np.uint64(2 * f), np.uint64(2 * f + 1)
+                    gr, gi = g1[gb + p], g1[gb + q]
+                    xr, xi = x1[xb + p], x1[xb + q]
                     sr += gr * xr + gi * xi
                     si += gi * xr - gr * xi
                 out_re[k] = alpha * sr
@@ -242,16 +359,19 @@ def value_grad_complex(bounds, crow, col, g, x, out_re, out_im, alpha):  # pragm
 def value_grad_complex_real_x(bounds, crow, col, g, x, out_re, out_im, alpha):  # pragma: no cover
     """alpha * sum_f g[r_k, f] x[c_k, f] for interleaved complex g (N, 2F) and real x (N, F)."""
     w = x.shape[1]
+    g1, x1 = g.reshape(-1), x.reshape(-1)
+    uw, uw2 = np.uint64(w), np.uint64(2 * w)
     for b in prange(bounds.shape[0] - 1):
         for i in range(bounds[b], bounds[b + 1]):
-            for k in range(crow[i], crow[i + 1]):
-                c = col[k]
-                sr = alpha * 0
-                si = alpha * 0
+            gb = np.uint64(i) * uw2
+            for k in range(np.uint64(crow[i]), np.uint64(crow[i + 1])):
+                xb = np.uint64(col[k]) * uw
+                sr = alpha - alpha
+                si = alpha - alpha
                 for f in range(w):
-                    xv = x[c, f]
-                    sr += g[i, 2 * f] * xv
-                    si += g[i, 2 * f + 1] * xv
+                    xv = x1[xb + np.uint64(f)]
+                    sr += g1[gb + np.uint64(2 * f)] * xv
+                    si += g1[gb + np.uint64(2 * f + 1)] * xv
                 out_re[k] = alpha * sr
                 out_im[k] = alpha * si
 
