@@ -733,7 +733,16 @@ def native_kernels(enabled: bool):
 
 
 def _np(t: Tensor) -> np.ndarray:
-    return t.detach().contiguous().numpy()
+    """An input for a kernel: a C-contiguous array (the kernels index rows as flat blocks)."""
+    return np.ascontiguousarray(t.detach().contiguous().numpy())
+
+
+def _out(t: Tensor) -> np.ndarray:
+    """A kernel's output array: the tensor's own memory (never a copy)."""
+    a = t.numpy()
+    if not a.flags.c_contiguous:  # torch.empty always gives C order; a copy would lose the result
+        raise RuntimeError(f"internal error: kernel output of shape {tuple(t.shape)} is not C-contiguous")
+    return a
 
 
 def _real_block(t: Tensor) -> Tensor:
@@ -757,13 +766,13 @@ def _native_matmul(native, crow, col, vre, vim, x, z, alpha, shift, beta):
     with native.LOCK:
         bounds = native.row_blocks(args[0], native.set_threads(torch.get_num_threads()))
         if vim is None:
-            native.csr_real(bounds, *args, _np(vre), xb.numpy(), zb.numpy(), ob.numpy(),
+            native.csr_real(bounds, *args, _np(vre), _np(xb), _np(zb), _out(ob),
                             scalar(alpha), scalar(shift), scalar(beta), z is not None)
         elif x.is_complex():
-            native.csr_complex(bounds, *args, _np(vre), _np(vim), xb.numpy(), zb.numpy(), ob.numpy(),
+            native.csr_complex(bounds, *args, _np(vre), _np(vim), _np(xb), _np(zb), _out(ob),
                                scalar(alpha), scalar(shift), scalar(beta), z is not None)
         else:
-            native.csr_complex_real_x(bounds, *args, _np(vre), _np(vim), xb.numpy(), zb.numpy(), ob.numpy(),
+            native.csr_complex_real_x(bounds, *args, _np(vre), _np(vim), _np(xb), _np(zb), _out(ob),
                                       scalar(alpha), scalar(shift), scalar(beta), z is not None)
     return out
 
@@ -777,7 +786,7 @@ def _native_matmul_real(native, crow, col, vre, vim, g, alpha, shift):
     with native.LOCK:
         c = _np(crow)
         bounds = native.row_blocks(c, native.set_threads(torch.get_num_threads()))
-        native.csr_complex_real_part(bounds, c, _np(col), _np(vre), _np(vim), _real_block(g).numpy(), out.numpy(),
+        native.csr_complex_real_part(bounds, c, _np(col), _np(vre), _np(vim), _np(_real_block(g)), _out(out),
                                      scalar(alpha), scalar(shift))
     return out
 
@@ -795,13 +804,13 @@ def _native_value_grad(native, crow, col, g, x, alpha, complex_values):
         bounds = native.row_blocks(c, native.set_threads(torch.get_num_threads()))
         if not complex_values:
             # real values: Re(sum g conj(x)) is the plain dot product of the (interleaved) blocks
-            native.value_grad_real(bounds, c, _np(col), gb.numpy(), xb.numpy(), out.numpy(), scalar(alpha))
+            native.value_grad_real(bounds, c, _np(col), _np(gb), _np(xb), _out(out), scalar(alpha))
         elif x.is_complex():
-            o = out.numpy()
-            native.value_grad_complex(bounds, c, _np(col), gb.numpy(), xb.numpy(), o[0], o[1], scalar(alpha))
+            o = _out(out)
+            native.value_grad_complex(bounds, c, _np(col), _np(gb), _np(xb), o[0], o[1], scalar(alpha))
         else:
-            o = out.numpy()
-            native.value_grad_complex_real_x(bounds, c, _np(col), gb.numpy(), xb.numpy(), o[0], o[1], scalar(alpha))
+            o = _out(out)
+            native.value_grad_complex_real_x(bounds, c, _np(col), _np(gb), _np(xb), o[0], o[1], scalar(alpha))
     return out
 
 
