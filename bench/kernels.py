@@ -129,9 +129,10 @@ def kernel_into(op, x):
     yb = torch.view_as_real(y).reshape(y.shape[0], 2 * y.shape[1]).numpy()
     bounds = _native.row_blocks(crow, _native.set_threads(torch.get_num_threads()))
     one, zero = np.float32(1), np.float32(0)
+    ahead = _native.lookahead(crow, col, xb.shape[1] * xb.itemsize)
 
     def run():
-        _native.csr_complex(bounds, crow, col, vre, vim, xb, yb, yb, one, zero, zero, False)
+        _native.csr_complex(bounds, crow, col, vre, vim, xb, yb, yb, one, zero, zero, False, ahead)
         return y
 
     return run

@@ -100,7 +100,10 @@ WIDTHS = [1, 17, 32, 48, 64, 97, 130]
 @pytest.mark.parametrize("vc,xc", [(False, False), (False, True), (True, False), (True, True)])
 @pytest.mark.parametrize("width", WIDTHS)
 @pytest.mark.parametrize("dtype", [torch.float64, torch.float32])
-def test_every_tile_width_matches_dense_and_reference(vc, xc, width, dtype):
+@pytest.mark.parametrize("prefetch", [False, True])
+def test_every_tile_width_matches_dense_and_reference(vc, xc, width, dtype, prefetch, monkeypatch):
+    if prefetch:  # every graph counts as one without locality: the kernels prefetch AHEAD rows
+        monkeypatch.setattr(_native, "FAR_BYTES", -1)
     dense = _dense(N, vc, hermitian=False, seed=21)
     alpha, shift, beta = 0.7, -1.3, 2.0
     x = _features((N, width), xc, seed=22, dtype=dtype).requires_grad_()
@@ -127,6 +130,20 @@ def test_every_tile_width_matches_dense_and_reference(vc, xc, width, dtype):
     torch.testing.assert_close(results[True][0], results[False][0], **tol)
     for a, b in zip(results[True][1], results[False][1]):
         torch.testing.assert_close(a, b, **tol)
+
+
+def test_lookahead_prefetches_only_without_locality():
+    # a banded pattern (every column within 2 of its row) keeps gathered rows in cache: no
+    # prefetch; a pattern whose columns sit half the matrix away (4096 rows of 512 bytes:
+    # 2 MiB, past FAR_BYTES) does
+    n = 8192
+    rows = np.repeat(np.arange(n), 5)
+    band = np.clip(rows + np.tile(np.arange(-2, 3), n), 0, n - 1)
+    far = (rows + n // 2) % n
+    crow = np.arange(0, 5 * n + 1, 5, dtype=np.int64)
+    assert _native.lookahead(crow, band.astype(np.int64), 512) == 0
+    assert _native.lookahead(crow, far.astype(np.int64), 512) == _native.AHEAD
+    assert _native.lookahead(np.zeros(1, dtype=np.int64), np.zeros(0, dtype=np.int64), 512) == 0
 
 
 @pytest.mark.parametrize("vc,xc,hermitian", CASES)

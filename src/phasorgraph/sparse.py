@@ -763,17 +763,19 @@ def _native_matmul(native, crow, col, vre, vim, x, z, alpha, shift, beta):
     xb, ob = _real_block(x), _real_block(out)
     zb = _real_block(z) if z is not None else ob
     args = (_np(crow), _np(col))
+    xa = _np(xb)
+    ahead = native.lookahead(*args, xa.shape[1] * xa.itemsize)
     with native.LOCK:
         bounds = native.row_blocks(args[0], native.set_threads(torch.get_num_threads()))
         if vim is None:
-            native.csr_real(bounds, *args, _np(vre), _np(xb), _np(zb), _out(ob),
-                            scalar(alpha), scalar(shift), scalar(beta), z is not None)
+            native.csr_real(bounds, *args, _np(vre), xa, _np(zb), _out(ob),
+                            scalar(alpha), scalar(shift), scalar(beta), z is not None, ahead)
         elif x.is_complex():
-            native.csr_complex(bounds, *args, _np(vre), _np(vim), _np(xb), _np(zb), _out(ob),
-                               scalar(alpha), scalar(shift), scalar(beta), z is not None)
+            native.csr_complex(bounds, *args, _np(vre), _np(vim), xa, _np(zb), _out(ob),
+                               scalar(alpha), scalar(shift), scalar(beta), z is not None, ahead)
         else:
-            native.csr_complex_real_x(bounds, *args, _np(vre), _np(vim), _np(xb), _np(zb), _out(ob),
-                                      scalar(alpha), scalar(shift), scalar(beta), z is not None)
+            native.csr_complex_real_x(bounds, *args, _np(vre), _np(vim), xa, _np(zb), _out(ob),
+                                      scalar(alpha), scalar(shift), scalar(beta), z is not None, ahead)
     return out
 
 
@@ -783,11 +785,12 @@ def _native_matmul_real(native, crow, col, vre, vim, g, alpha, shift):
     if n == 0 or w == 0:
         return out
     scalar = np.float32 if vre.dtype == torch.float32 else np.float64
+    c, cols, ga = _np(crow), _np(col), _np(_real_block(g))
+    ahead = native.lookahead(c, cols, ga.shape[1] * ga.itemsize)
     with native.LOCK:
-        c = _np(crow)
         bounds = native.row_blocks(c, native.set_threads(torch.get_num_threads()))
-        native.csr_complex_real_part(bounds, c, _np(col), _np(vre), _np(vim), _np(_real_block(g)), _out(out),
-                                     scalar(alpha), scalar(shift))
+        native.csr_complex_real_part(bounds, c, cols, _np(vre), _np(vim), ga, _out(out),
+                                     scalar(alpha), scalar(shift), ahead)
     return out
 
 
@@ -798,19 +801,19 @@ def _native_value_grad(native, crow, col, g, x, alpha, complex_values):
     if nnz == 0 or x.shape[1] == 0:
         return out
     scalar = np.float32 if real == torch.float32 else np.float64
-    gb, xb = _real_block(g), _real_block(x)
+    c, cols, ga, xa = _np(crow), _np(col), _np(_real_block(g)), _np(_real_block(x))
+    ahead = native.lookahead(c, cols, xa.shape[1] * xa.itemsize)
     with native.LOCK:
-        c = _np(crow)
         bounds = native.row_blocks(c, native.set_threads(torch.get_num_threads()))
         if not complex_values:
             # real values: Re(sum g conj(x)) is the plain dot product of the (interleaved) blocks
-            native.value_grad_real(bounds, c, _np(col), _np(gb), _np(xb), _out(out), scalar(alpha))
+            native.value_grad_real(bounds, c, cols, ga, xa, _out(out), scalar(alpha), ahead)
         elif x.is_complex():
             o = _out(out)
-            native.value_grad_complex(bounds, c, _np(col), _np(gb), _np(xb), o[0], o[1], scalar(alpha))
+            native.value_grad_complex(bounds, c, cols, ga, xa, o[0], o[1], scalar(alpha), ahead)
         else:
             o = _out(out)
-            native.value_grad_complex_real_x(bounds, c, _np(col), _np(gb), _np(xb), o[0], o[1], scalar(alpha))
+            native.value_grad_complex_real_x(bounds, c, cols, ga, xa, o[0], o[1], scalar(alpha), ahead)
     return out
 
 
