@@ -8,10 +8,12 @@ checks hold.
 
 Complex numbers never appear as such. Complex features are their interleaved real view, an
 (N, 2F) block ``(re_0, im_0, re_1, im_1, ...)``; complex matrix values are two real arrays
-``(re, im)``. For a complex matrix the row loop keeps two real accumulators of width 2F,
-``a = sum_k re_k x[c_k]`` and ``b = sum_k im_k x[c_k]``, so each gathered feature row is read
-once and the inner loop is a contiguous multiply-add; the complex result
-``(a_re - b_im, a_im + b_re)`` is formed once per row.
+``(re, im)``. For a complex matrix the row loop keeps two real accumulators,
+``a = sum_k re_k x[c_k]`` and ``d = sum_k im_k x[c_k]``, so each gathered feature element is
+loaded once and feeds two multiply-adds; the complex result ``(a_re - d_im, a_im + d_re)`` is
+formed once per row. The accumulators live in registers, one tile of TILE = 64 columns at a
+time (see "register tiles" below), and on graphs without locality the kernels prefetch the
+rows they will gather a few non-zeros later (:func:`lookahead`).
 
 Each product has a fused epilogue: ``out = alpha * A x + shift * x + beta * z`` (z optional),
 so one term of a Chebyshev recursion, :math:`T_k = 2 a P T_{k-1} + 2 b T_{k-1} - T_{k-2}`, is
@@ -48,7 +50,6 @@ __all__ = [
     "csr_complex_real_part",
     "value_grad_real",
     "value_grad_complex",
-    "value_grad_complex_real_x",
     "transpose_pattern",
     "row_blocks",
     "set_threads",
@@ -418,23 +419,33 @@ def value_grad_real(bounds, crow, col, g, x, out, alpha, ahead):  # pragma: no c
 
 @njit(**_REDUCE)
 def value_grad_complex(bounds, crow, col, g, x, out_re, out_im, alpha, ahead):  # pragma: no cover
-    """alpha * sum_f g[r_k, f] conj(x[c_k, f]) for interleaved complex g, x (N, 2F).
+    """alpha * sum_f g[r_k, f] conj(x[c_k, f]) for interleaved complex g (N, 2F) and x either
+    interleaved complex (N, 2F) or real (N, F).
 
-    Both parts are plain dot products over the 2F interleaved reals of ``x[c_k]``:
-    ``Re = <g_r, x_c>`` and ``Im = <h_r, x_c>`` with ``h = (Im g_f, -Re g_f)`` per column, built
-    once per row, so the loop over f has no shuffles.
+    Both parts are plain dot products of the gathered row ``x[c_k]`` with two rows p and m
+    built once per output row r: for complex x, ``p = g_r`` and ``m = (Im g_f, -Re g_f)`` per
+    column (so Re = <p, x>, Im = <m, x> over the interleaved reals); for real x, p and m are
+    the real and imaginary parts of g_r. The loop over f has no shuffles.
     """
     w = x.shape[1]
+    real_x = g.shape[1] != w
     g1, x1 = g.reshape(-1), x.reshape(-1)
-    uw = np.uint64(w)
+    uw, ug = np.uint64(w), np.uint64(g.shape[1])
     nnz, lines, ahead = np.uint64(col.shape[0]), (w + 15) // 16, np.uint64(ahead)
     for b in prange(bounds.shape[0] - 1):
-        h = np.empty(w, dtype=g.dtype)
+        p = np.empty(w, dtype=g.dtype)
+        m = np.empty(w, dtype=g.dtype)
         for i in range(bounds[b], bounds[b + 1]):
-            gb = np.uint64(i) * uw
-            for f in range(w // 2):
-                h[2 * f] = g1[gb + np.uint64(2 * f + 1)]
-                h[2 * f + 1] = -g1[gb + np.uint64(2 * f)]
+            gb = np.uint64(i) * ug
+            if real_x:
+                for f in range(w):
+                    p[f] = g1[gb + np.uint64(2 * f)]
+                    m[f] = g1[gb + np.uint64(2 * f + 1)]
+            else:
+                for f in range(w // 2):
+                    re, im = g1[gb + np.uint64(2 * f)], g1[gb + np.uint64(2 * f + 1)]
+                    p[2 * f], p[2 * f + 1] = re, im
+                    m[2 * f], m[2 * f + 1] = im, -re
             for k in range(np.uint64(crow[i]), np.uint64(crow[i + 1])):
                 if ahead > 0:
                     _ahead(x1, col, k, uw, ahead, nnz, lines)
@@ -443,32 +454,8 @@ def value_grad_complex(bounds, crow, col, g, x, out_re, out_im, alpha, ahead):  
                 si = alpha - alpha
                 for f in range(w):
                     xv = x1[xb + np.uint64(f)]
-                    sr += g1[gb + np.uint64(f)] * xv
-                    si += h[f] * xv
-                out_re[k] = alpha * sr
-                out_im[k] = alpha * si
-
-
-@njit(**_REDUCE)
-def value_grad_complex_real_x(bounds, crow, col, g, x, out_re, out_im, alpha, ahead):  # pragma: no cover
-    """alpha * sum_f g[r_k, f] x[c_k, f] for interleaved complex g (N, 2F) and real x (N, F)."""
-    w = x.shape[1]
-    g1, x1 = g.reshape(-1), x.reshape(-1)
-    uw, uw2 = np.uint64(w), np.uint64(2 * w)
-    nnz, lines, ahead = np.uint64(col.shape[0]), (w + 15) // 16, np.uint64(ahead)
-    for b in prange(bounds.shape[0] - 1):
-        for i in range(bounds[b], bounds[b + 1]):
-            gb = np.uint64(i) * uw2
-            for k in range(np.uint64(crow[i]), np.uint64(crow[i + 1])):
-                if ahead > 0:
-                    _ahead(x1, col, k, uw, ahead, nnz, lines)
-                xb = np.uint64(col[k]) * uw
-                sr = alpha - alpha
-                si = alpha - alpha
-                for f in range(w):
-                    xv = x1[xb + np.uint64(f)]
-                    sr += g1[gb + np.uint64(2 * f)] * xv
-                    si += g1[gb + np.uint64(2 * f + 1)] * xv
+                    sr += p[f] * xv
+                    si += m[f] * xv
                 out_re[k] = alpha * sr
                 out_im[k] = alpha * si
 

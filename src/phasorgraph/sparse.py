@@ -808,12 +808,9 @@ def _native_value_grad(native, crow, col, g, x, alpha, complex_values):
         if not complex_values:
             # real values: Re(sum g conj(x)) is the plain dot product of the (interleaved) blocks
             native.value_grad_real(bounds, c, cols, ga, xa, _out(out), scalar(alpha), ahead)
-        elif x.is_complex():
+        else:  # complex g; x complex or real (the kernel tells them apart by width)
             o = _out(out)
             native.value_grad_complex(bounds, c, cols, ga, xa, o[0], o[1], scalar(alpha), ahead)
-        else:
-            o = _out(out)
-            native.value_grad_complex_real_x(bounds, c, cols, ga, xa, o[0], o[1], scalar(alpha), ahead)
     return out
 
 
