@@ -260,17 +260,20 @@ def test_values_gradient_is_a_sampled_product(values_dtype, x_dtype):
     np.testing.assert_allclose(values.grad.numpy(), expected, rtol=1e-12, atol=1e-12)
 
 
-def test_values_matmul_adjoint_perm_and_rows_given():
+def test_values_matmul_takes_only_what_it_uses():
+    # the row of each value and the transposed pattern come from (crow, col) alone: arguments
+    # that would be ignored are refused rather than accepted in silence
+    import inspect
+
     dense = _random_dense(N, COMPLEX, hermitian=False, seed=15)
     crow, col, values = _pattern(dense)
+    assert list(inspect.signature(values_matmul).parameters) == ["crow", "col", "values", "x", "hermitian"]
     rows = sparse._row_indices(crow)
-    perm = torch.argsort(col * N + rows)
-    x = _features((N, 2), COMPLEX).requires_grad_()
-    values_matmul(crow, col, values, x, rows=rows, adjoint_perm=perm).abs().sum().backward()
-    g1 = x.grad.clone()
-    x.grad = None
-    values_matmul(crow, col, values, x).abs().sum().backward()
-    torch.testing.assert_close(x.grad, g1)
+    np.testing.assert_array_equal(rows.numpy(), np.repeat(np.arange(N), np.diff(crow.numpy())))  # numpy.repeat
+    x = _features((N, 2), COMPLEX)
+    for extra in ({"rows": rows}, {"adjoint_perm": torch.argsort(col * N + rows)}):
+        with pytest.raises(TypeError, match=next(iter(extra))):
+            values_matmul(crow, col, values, x, **extra)
 
 
 # ---------------------------------------------------------------------- bad input

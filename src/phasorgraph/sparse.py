@@ -151,6 +151,12 @@ def check_csr(crow, col, num_rows: int, num_cols: int, *, name: str = "matrix") 
     return crow, col
 
 
+def _row_indices(crow: Tensor) -> Tensor:
+    """(nnz,) the row of each stored entry of a CSR pattern (``crow`` (N + 1,))."""
+    n = crow.numel() - 1
+    return torch.repeat_interleave(torch.arange(n, device=crow.device, dtype=crow.dtype), crow.diff())
+
+
 def _transpose_pattern(crow: Tensor, col: Tensor, num_cols: int) -> tuple:
     """(t_crow, t_col, perm): the CSR pattern of A^T with ``t_values = values[perm]``.
 
@@ -162,7 +168,7 @@ def _transpose_pattern(crow: Tensor, col: Tensor, num_cols: int) -> tuple:
             t_crow, t_col, perm = native.transpose_pattern(crow.numpy(), col.numpy(), int(num_cols))
             return torch.from_numpy(t_crow), torch.from_numpy(t_col), torch.from_numpy(perm)
     n = crow.numel() - 1
-    rows = torch.repeat_interleave(torch.arange(n, device=crow.device), crow.diff())
+    rows = _row_indices(crow)
     perm = torch.argsort(col * max(n, 1) + rows)
     t_crow = torch.zeros(num_cols + 1, dtype=torch.int64, device=crow.device)
     t_crow[1:] = torch.cumsum(torch.bincount(col, minlength=num_cols), 0)
@@ -1046,14 +1052,8 @@ def general_matmul(op: SparseOperator, x: torch.Tensor) -> torch.Tensor:
     return op.matmul(x)
 
 
-def _row_indices(crow: torch.Tensor) -> torch.Tensor:
-    n = crow.numel() - 1
-    return torch.repeat_interleave(torch.arange(n, device=crow.device, dtype=crow.dtype), crow.diff())
-
-
 def values_matmul(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, x: torch.Tensor, *,
-                  hermitian: bool = False, rows: Optional[torch.Tensor] = None,
-                  adjoint_perm: Optional[torch.Tensor] = None) -> torch.Tensor:
+                  hermitian: bool = False) -> torch.Tensor:
     r"""``A @ x`` with ``A`` the CSR matrix ``(crow, col, values)``, differentiable in ``values`` and ``x``.
 
     The gradient of value k is :math:`\sum_f g[r_k, f]\, \overline{x[c_k, f]}` (its real part
@@ -1072,9 +1072,8 @@ def values_matmul(crow: torch.Tensor, col: torch.Tensor, values: torch.Tensor, x
         x: (N, ...) real or complex features of the same precision. Real x with complex values
             is multiplied without casting x to complex.
         hermitian: whether the values make A Hermitian (default False). The caller vouches
-            for it; it is not checked.
-        rows, adjoint_perm: accepted for compatibility and not used (the row of each value and
-            the transposed pattern are derived from the validated ``crow`` and ``col``).
+            for it; it is not checked. The row of each value and the transposed pattern come
+            from the validated ``crow`` and ``col`` (:class:`PatternOperator` builds them).
 
     Returns:
         (N, ...) tensor, complex if values or x are.
