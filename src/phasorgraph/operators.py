@@ -159,45 +159,35 @@ def _check_degree_range(degree: torch.Tensor, dtype: torch.dtype, what: str) -> 
     return dmax
 
 
-def _assemble(n: int, rows, cols, vals, dtype, diag: Optional[torch.Tensor] = None) -> torch.Tensor:
-    """CSR (n, n) from COO parts plus an optional diagonal; duplicates summed, vectorized.
+def _assemble(crow: torch.Tensor, cols: torch.Tensor, vals: torch.Tensor, dtype,
+              diag: Optional[torch.Tensor] = None) -> torch.Tensor:
+    """CSR (n, n) with ``vals`` on a canonical CSR pattern, plus an optional diagonal.
 
-    Fast path (every caller in this module): the COO parts are already canonical (sorted by
-    (row, col), no repeats), so the CSR row pointer is a bincount and the diagonal is added by
-    one canonical merge in scipy (``csr + diags``, a single O(nnz + n) pass in compiled code; an
-    entry that sums to exactly 0 there, such as the diagonal of a node whose only edge is a
-    self-loop, is left out). Any other input goes through ``torch.unique``.
+    The pattern ``(crow, cols)`` is canonical (columns strictly increasing within each row) and
+    comes with its row pointer from its one owner: the graph's frozen structure
+    (``GraphStructure.crow``, built once per graph) or a canonical scipy matrix (``indptr``).
+    Without a diagonal the operator shares that row pointer and those columns. The diagonal is
+    added by one canonical merge in scipy (``csr + diags``, a single O(nnz + n) pass in compiled
+    code; an entry that sums to exactly 0 there, such as the diagonal of a node whose only edge
+    is a self-loop, is left out).
     """
-    r, c = rows.numpy(), cols.numpy()
-    # canonical <=> rows never decrease and, within a row, columns strictly increase
-    # (boolean temporaries only: cheaper than forming the int64 keys row * n + col)
-    if r.size > 1 and not (bool(np.all(r[1:] >= r[:-1])) and bool(np.all((r[1:] > r[:-1]) | (c[1:] > c[:-1])))):
-        return _assemble_unsorted(n, rows, cols, vals, dtype, diag)
-    crow = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(np.bincount(r, minlength=n), out=crow[1:])
+    n = crow.numel() - 1
     if diag is None:
-        return csr_matrix(torch.from_numpy(crow), cols.contiguous(), vals.to(dtype), (n, n))
-    M = sp.csr_matrix((vals.numpy(), c, crow), shape=(n, n))
+        return csr_matrix(crow, cols, vals.to(dtype), (n, n))
+    M = sp.csr_matrix((vals.numpy(), cols.numpy(), crow.numpy()), shape=(n, n))
     real = torch.float32 if vals.dtype in (torch.float32, torch.complex64) else torch.float64
     M = M + sp.diags(diag.to(real).numpy(), format="csr")  # same precision: no upcast
     return csr_matrix(torch.from_numpy(M.indptr.astype(np.int64)), torch.from_numpy(M.indices.astype(np.int64)),
                       torch.from_numpy(M.data).to(dtype), (n, n))
 
 
-def _assemble_unsorted(n: int, rows, cols, vals, dtype, diag: Optional[torch.Tensor] = None) -> torch.Tensor:
-    """General :func:`_assemble`: any order, repeats summed (one ``torch.unique``)."""
-    if diag is not None:
-        ar = torch.arange(n)
-        rows = torch.cat([rows, ar])
-        cols = torch.cat([cols, ar])
-        vals = torch.cat([vals, diag.to(vals.dtype)])
-    key = rows * max(n, 1) + cols
-    uniq, inv = torch.unique(key, sorted=True, return_inverse=True)
-    summed = torch.zeros(uniq.numel(), dtype=vals.dtype).index_add_(0, inv, vals)
-    r = uniq // max(n, 1)
-    crow = torch.zeros(n + 1, dtype=torch.int64)
-    crow[1:] = torch.cumsum(torch.bincount(r, minlength=n), 0)
-    return csr_matrix(crow, (uniq % max(n, 1)).contiguous(), summed.to(dtype), (n, n))
+def _canonical_parts(M: sp.spmatrix) -> tuple:
+    """(crow, cols, vals, rows) torch tensors of a scipy matrix in canonical CSR form."""
+    M = sp.csr_matrix(M)
+    M.sum_duplicates()  # sorted columns, no repeats (scipy's canonical format)
+    crow = torch.from_numpy(M.indptr.astype(np.int64))
+    rows = torch.from_numpy(np.repeat(np.arange(M.shape[0], dtype=np.int64), np.diff(M.indptr)))
+    return crow, torch.from_numpy(M.indices.astype(np.int64)), torch.from_numpy(M.data.astype(np.float64)), rows
 
 
 def phase_base(structure, phase: str) -> torch.Tensor:
@@ -301,7 +291,7 @@ def combinatorial_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype
     st = _structure(graph)
     n = graph.num_nodes
     dmax = _check_degree_range(st.degree, dtype, "combinatorial_laplacian")
-    m = _assemble(n, st.rows, st.cols, -st.symmetric, dtype, diag=st.degree)
+    m = _assemble(st.crow, st.cols, -st.symmetric, dtype, diag=st.degree)
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 2 * dmax), kind="combinatorial_laplacian")
 
 
@@ -327,7 +317,7 @@ def normalized_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] =
     dtype = _real_dtype(dtype)
     st = _structure(graph)
     n = graph.num_nodes
-    m = _assemble(n, st.rows, st.cols, -st.normalized, dtype, diag=torch.ones(n, dtype=torch.float64))
+    m = _assemble(st.crow, st.cols, -st.normalized, dtype, diag=torch.ones(n, dtype=torch.float64))
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 2.0), kind="normalized_laplacian")
 
 
@@ -354,7 +344,7 @@ def random_walk_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] 
     dtype = _real_dtype(dtype)
     st = _structure(graph)
     n = graph.num_nodes
-    m = _assemble(n, st.rows, st.cols, -st.symmetric * st.inv_degree[st.rows], dtype,
+    m = _assemble(st.crow, st.cols, -st.symmetric * st.inv_degree[st.rows], dtype,
                   diag=torch.ones(n, dtype=torch.float64))
     base = normalized_laplacian(graph, dtype=dtype)
     scale = _similarity_scale(st, -0.5).to(dtype)
@@ -380,7 +370,7 @@ def renormalized_adjacency(graph: DirectedGraph, *, dtype: Optional[torch.dtype]
     dtype = _real_dtype(dtype)
     st = _structure(graph)
     s = (st.degree + 1).rsqrt()  # degrees of As + I are >= 1: no zero-degree case
-    m = _assemble(graph.num_nodes, st.rows, st.cols, st.symmetric * s[st.rows] * s[st.cols], dtype, diag=s * s)
+    m = _assemble(st.crow, st.cols, st.symmetric * s[st.rows] * s[st.cols], dtype, diag=s * s)
     return SparseOperator(m, hermitian=True, spectrum=(-1.0, 1.0), kind="renormalized_adjacency")
 
 
@@ -430,7 +420,7 @@ def magnetic_adjacency(graph: DirectedGraph, charge: float = 0.25, *, phase: str
     st = _structure(graph)
     n = graph.num_nodes
     dmax = _check_degree_range(st.degree, dtype, "magnetic_adjacency")
-    m = _assemble(n, st.rows, st.cols, _magnetic_values(st, st.symmetric, q, phase, dtype), dtype)
+    m = _assemble(st.crow, st.cols, _magnetic_values(st, st.symmetric, q, phase, dtype), dtype)
     return SparseOperator(m, hermitian=True, spectrum=(-dmax, dmax), kind="magnetic_adjacency")
 
 
@@ -467,12 +457,12 @@ def magnetic_laplacian(graph: DirectedGraph, charge: float = 0.25, normalized: b
     if normalized:
         # the values of D^-1/2 H(q) D^-1/2, by the same arithmetic as a learned charge
         vals = _magnetic_values(st, st.normalized, q, phase, dtype)
-        m = _assemble(n, st.rows, st.cols, vals.neg_(), dtype, diag=torch.ones(n, dtype=torch.float64))
+        m = _assemble(st.crow, st.cols, vals.neg_(), dtype, diag=torch.ones(n, dtype=torch.float64))
         spectrum = (0.0, 2.0)
     else:
         dmax = _check_degree_range(st.degree, dtype, "magnetic_laplacian(normalized=False)")
         vals = _magnetic_values(st, st.symmetric, q, phase, dtype)
-        m = _assemble(n, st.rows, st.cols, vals.neg_(), dtype, diag=st.degree)
+        m = _assemble(st.crow, st.cols, vals.neg_(), dtype, diag=st.degree)
         spectrum = (0.0, 2 * dmax)
     return SparseOperator(m, hermitian=True, spectrum=spectrum,
                           kind="magnetic_laplacian" if normalized else "magnetic_laplacian_unnormalized")
@@ -507,13 +497,13 @@ def diffusion(graph: DirectedGraph, charge: Optional[float] = None, *, phase: st
     st = _structure(graph)
     if charge is None:
         dtype = _real_dtype(dtype)
-        m = _assemble(n, st.rows, st.cols, st.normalized / 2, dtype, diag=half)
+        m = _assemble(st.crow, st.cols, st.normalized / 2, dtype, diag=half)
         return SparseOperator(m, hermitian=True, spectrum=(0.0, 1.0), kind="diffusion")
     q = _check_charge(charge)
     warn_if_wrapped(graph, q, phase)
     dtype = _complex_dtype(dtype)
     vals = _magnetic_values(st, st.normalized, q, phase, dtype)
-    m = _assemble(n, st.rows, st.cols, vals.div_(2), dtype, diag=half)
+    m = _assemble(st.crow, st.cols, vals.div_(2), dtype, diag=half)
     return SparseOperator(m, hermitian=True, spectrum=(0.0, 1.0), kind="magnetic_diffusion")
 
 
@@ -543,11 +533,11 @@ def random_walk(graph: DirectedGraph, lazy: bool = True, *, dtype: Optional[torc
     vals = st.symmetric * st.inv_degree[st.cols]
     scale = _similarity_scale(st, 0.5).to(dtype)
     if lazy:
-        m = _assemble(n, st.rows, st.cols, vals / 2, dtype, diag=torch.full((n,), 0.5, dtype=torch.float64))
+        m = _assemble(st.crow, st.cols, vals / 2, dtype, diag=torch.full((n,), 0.5, dtype=torch.float64))
         base = diffusion(graph, dtype=dtype)
         return SparseOperator(m, hermitian=False, spectrum=(0.0, 1.0), kind="lazy_random_walk", similar=(base, scale))
-    m = _assemble(n, st.rows, st.cols, vals, dtype)
-    base = SparseOperator(_assemble(n, st.rows, st.cols, st.normalized, dtype), hermitian=True, spectrum=(-1.0, 1.0),
+    m = _assemble(st.crow, st.cols, vals, dtype)
+    base = SparseOperator(_assemble(st.crow, st.cols, st.normalized, dtype), hermitian=True, spectrum=(-1.0, 1.0),
                           kind="normalized_adjacency")
     return SparseOperator(m, hermitian=False, spectrum=(-1.0, 1.0), kind="random_walk", similar=(base, scale))
 
@@ -618,11 +608,8 @@ def pagerank_laplacian(graph: DirectedGraph, teleport: float = 0.05, *, dtype: O
     pi = _stationary(P_sparse.T.tocsr(), c, tol, max_iter)
     sq = np.sqrt(pi)
     S = sp.diags(sq) @ P_sparse @ sp.diags(1.0 / sq)
-    sym = ((S + S.T) * 0.5).tocoo()
-    rows = torch.as_tensor(sym.row.astype(np.int64))
-    cols = torch.as_tensor(sym.col.astype(np.int64))
-    vals = torch.as_tensor(-sym.data)
-    m = _assemble(n, rows, cols, vals, dtype, diag=torch.ones(n, dtype=torch.float64))
+    crow, cols, vals, _ = _canonical_parts((S + S.T) * 0.5)
+    m = _assemble(crow, cols, -vals, dtype, diag=torch.ones(n, dtype=torch.float64))
     a = torch.as_tensor(sq * c)
     b = torch.as_tensor(1.0 / sq)
     U = torch.stack([a, b], dim=1)
@@ -640,14 +627,10 @@ class ProximityOperators(NamedTuple):
 
 
 def _renormalize_scipy(W: sp.spmatrix, dtype, kind: str) -> SparseOperator:
-    W = W.tocoo()
-    n = W.shape[0]
-    rows = torch.as_tensor(W.row.astype(np.int64))
-    cols = torch.as_tensor(W.col.astype(np.int64))
-    vals = torch.as_tensor(W.data.astype(np.float64))
-    degree = torch.zeros(n, dtype=torch.float64).index_add_(0, rows, vals)
+    crow, cols, vals, rows = _canonical_parts(W)
+    degree = torch.zeros(W.shape[0], dtype=torch.float64).index_add_(0, rows, vals)
     s = (degree + 1).rsqrt()
-    m = _assemble(n, rows, cols, vals * s[rows] * s[cols], dtype, diag=s * s)
+    m = _assemble(crow, cols, vals * s[rows] * s[cols], dtype, diag=s * s)
     return SparseOperator(m, hermitian=True, spectrum=(-1.0, 1.0), kind=kind)
 
 
