@@ -49,6 +49,7 @@ ROOT = Path(__file__).resolve().parents[1]
 START_METHOD = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
 F64, C128 = torch.float64, torch.complex128
 STEPS, LR = 3, 0.3
+FUSED = {"alpha": 0.7, "shift": -0.3, "beta": -1.2}
 
 BUILDERS = [
     ("normalized_laplacian", O.normalized_laplacian, {"dtype": F64}),
@@ -229,6 +230,14 @@ def _gradchecks(world: int) -> dict:
 
     torch.manual_seed(0)
     out["hermitian_fused"] = torch.autograd.gradcheck(fused, (x,), atol=1e-8, fast_mode=True)
+    general = _operator_of(shard, "random_walk")
+
+    def general_fused(x):  # the same on a non-Hermitian operator: exchange + local fused product
+        xl = _TakeRows.apply(x, nodes)
+        return _GatherRows.apply(general.matmul_add(xl, 2 * xl, alpha=0.7, shift=-0.3, beta=-1.0), nodes, n)
+
+    torch.manual_seed(0)
+    out["general_fused"] = torch.autograd.gradcheck(general_fused, (x,), atol=1e-8, fast_mode=True)
     q = torch.tensor(0.15, dtype=F64, requires_grad=True)
 
     def learned(x, q):
@@ -258,6 +267,12 @@ def _checks(rank: int, world: int) -> dict:
         (y.abs() ** 2 * c[:, None]).sum().backward()
         ops[name] = {"dense": op.to_dense(), "y": y.detach(), "grad": xl.grad, "spectrum": op.spectrum,
                      "nnz": op.nnz, "repr": repr(op)}
+        # the fused Chebyshev step alpha A x + shift x + beta z (one exchange, one local pass)
+        xl = x[nodes].clone().requires_grad_()
+        zl = (2 * x[nodes] + 1).requires_grad_()
+        y = op.matmul_add(xl, zl, **FUSED)
+        (y.abs() ** 2 * c[:, None]).sum().backward()
+        ops[name].update(fused=y.detach(), fused_x_grad=xl.grad, fused_z_grad=zl.grad)
     res["operators"] = ops
     # shards built from disjoint local slices (every third edge on each rank, a different split)
     sl = slice(rank, None, world)
@@ -402,6 +417,15 @@ def test_sharded_operators_are_the_owned_rows(spawned, world):
             close(got["y"], y.detach()[r["nodes"]])
             close(got["grad"], xr.grad[r["nodes"]])         # backward across the exchange
             assert got["spectrum"] == pytest.approx(full.spectrum, rel=1e-12), name  # agreed over ranks
+            # fused step against the dense formula alpha A x + shift x + beta z (numpy, owned rows),
+            # and its gradients against the whole-graph fused product
+            xn, zn = x.numpy(), 2 * x.numpy() + 1
+            want = FUSED["alpha"] * dense.numpy() @ xn + FUSED["shift"] * xn + FUSED["beta"] * zn
+            np.testing.assert_allclose(got["fused"].numpy(), want[r["nodes"].numpy()], rtol=1e-10, atol=1e-10)
+            xf, zf = x.clone().requires_grad_(), torch.from_numpy(zn).requires_grad_()
+            (full.matmul_add(xf, zf, **FUSED).abs() ** 2 * c[:, None]).sum().backward()
+            close(got["fused_x_grad"], xf.grad[r["nodes"]])
+            close(got["fused_z_grad"], zf.grad[r["nodes"]])
             assert got["nnz"] == int((dense[r["nodes"]] != 0).sum()) and f"of 34" in got["repr"]
         dense_local = torch.cat([r["local_edges_dense"] for r in ranks])
     close(dense_local, O.magnetic_laplacian(g, 0.2, dtype=C128).to_dense()[torch.cat([r["nodes"] for r in ranks])])
@@ -541,6 +565,49 @@ def test_one_process_shard_operators_equal_the_whole_graph_operators(graph):
     assert shard.num_halo == 0 and sorted(shard.nodes.tolist()) == list(range(graph.num_nodes))
     for name, builder, kwargs in BUILDERS:
         close(shard.operator(builder, **kwargs).to_dense(), builder(graph, **kwargs).to_dense()[shard.nodes])
+
+
+@pytest.mark.parametrize("name", ["magnetic_laplacian", "random_walk"])
+def test_sharded_fused_step_is_one_local_pass(name):
+    # without a process group (one part, no halo): alpha A x + shift x + beta z is ONE fused
+    # product of the local block (one phasorgraph::csr_matmul, no separate adds) and equals the
+    # dense formula (numpy); the backward too is one fused product per input
+    from torch.utils._python_dispatch import TorchDispatchMode
+
+    class Calls(TorchDispatchMode):
+        def __init__(self):
+            super().__init__()
+            self.names = []
+
+        def __torch_dispatch__(self, func, types, args=(), kwargs=None):
+            self.names.append(str(func.overloadpacket))
+            return func(*args, **(kwargs or {}))
+
+    g = shared_graph()
+    shard = GraphShard.from_graph(g, partition_nodes(g, 1))
+    op = _operator_of(shard, name)
+    nodes = shard.nodes.numpy()                      # the local order (locality blocks)
+    x = features(g.num_nodes, 3)[nodes]
+    z = features(g.num_nodes, 3, seed=1).to(op.dtype)[nodes]
+    xr, zr = x.clone().requires_grad_(), z.clone().requires_grad_()
+    with Calls() as calls:
+        y = op.matmul_add(xr, zr, **FUSED)
+    arithmetic = [c for c in calls.names if c.split(".")[-1] in ("add", "add_", "mul", "mul_", "sub")]
+    assert calls.names.count("phasorgraph.csr_matmul") == 1 and not arithmetic, calls.names
+    dense = _operator_of(g, name).to_dense().numpy()[nodes][:, nodes]
+    xn, zn = x.numpy(), z.numpy()
+    np.testing.assert_allclose(y.detach().numpy(), FUSED["alpha"] * dense @ xn + FUSED["shift"] * xn
+                               + FUSED["beta"] * zn, rtol=1e-12, atol=1e-12)
+    w = features(g.num_nodes, 3, seed=2).to(y.dtype)
+    (w.conj() * y).real.sum().backward()
+    # d/dx = Re(alpha A^H w + shift w), d/dz = beta w: the closed form of the adjoint
+    gx = FUSED["alpha"] * dense.conj().T @ w.numpy() + FUSED["shift"] * w.numpy()
+    np.testing.assert_allclose(xr.grad.numpy(), gx.real, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(zr.grad.numpy(), FUSED["beta"] * w.numpy(), rtol=1e-12, atol=1e-12)
+    with pytest.raises(GraphInputError, match=r"z must be None or a tensor of x's shape \(34, 3\)"):
+        op.matmul_add(x, z[:3])
+    with pytest.raises(GraphInputError, match="beta must be a finite real number; got nan"):
+        op.matmul_add(x, z, beta=float("nan"))
 
 
 def test_shards_refuse_pickling():

@@ -428,6 +428,14 @@ def _owned_rows(matrix: torch.Tensor, num_owned: int) -> torch.Tensor:
     return csr_matrix(new_crow, col[:end], val[:end], (n, n))
 
 
+def _padded(z: Optional[torch.Tensor], rows: int) -> Optional[torch.Tensor]:
+    """z (owned rows) with zero rows appended up to ``rows`` (the local block's owned + halo
+    rows), so that it can be the fused addend of a local product; z itself without a halo."""
+    if z is None or z.shape[0] == rows:
+        return z
+    return torch.cat([z, z.new_zeros((rows - z.shape[0],) + tuple(z.shape[1:]))], dim=0)
+
+
 class _ShardedHermitianProduct(torch.autograd.Function):
     """y = alpha A x + shift x + beta z on the owned rows (exchange, then one fused local pass);
     backward: alpha A g + shift g for x (the same sharded product: A^H = A) and beta g for z."""
@@ -437,10 +445,7 @@ class _ShardedHermitianProduct(torch.autograd.Function):
         ctx.op, ctx.alpha, ctx.shift, ctx.beta = op, alpha, shift, beta
         ctx.x_is_complex = x.is_complex()
         ctx.z_is_complex = z is not None and z.is_complex()
-        y = op._product(x, alpha, shift)
-        if z is not None and beta != 0:
-            y = y.add_(z, alpha=beta) if torch.promote_types(y.dtype, z.dtype) == y.dtype else y + beta * z
-        return y
+        return op._product(x, alpha, shift, z, beta)
 
     @staticmethod
     @once_differentiable
@@ -555,18 +560,18 @@ class ShardedOperator(SparseOperator):
     def _extended(self, x: torch.Tensor, halo: torch.Tensor) -> torch.Tensor:
         return torch.cat([x, halo.to(x.dtype)], dim=0)
 
-    def _product(self, x: torch.Tensor, alpha: float = 1.0, shift: float = 0.0) -> torch.Tensor:
-        """Owned rows of ``alpha A x + shift x`` without autograd bookkeeping (inside autograd
-        functions): the exchange, then one fused pass of the local kernel."""
+    def _product(self, x: torch.Tensor, alpha: float = 1.0, shift: float = 0.0, z: Optional[torch.Tensor] = None,
+                 beta: float = 0.0) -> torch.Tensor:
+        """Owned rows of ``alpha A x + shift x + beta z`` without autograd bookkeeping (inside
+        autograd functions): the exchange, then one fused pass of the local kernel."""
         ext = self._extended(x, _halo_rows(self._shard._plan, x))
         if ext.shape[0] == 0:  # nothing local at all: a zero-row result of the right dtype
             dtype = torch.promote_types(x.dtype, self.dtype)
+            if z is not None:
+                dtype = torch.promote_types(dtype, z.dtype)
             return x.new_zeros(x.shape, dtype=dtype)
         with torch.no_grad():
-            if alpha == 1.0 and shift == 0.0:
-                y = self._local.matmul(ext)
-            else:
-                y = self._local.matmul_add(ext, alpha=alpha, shift=shift)
+            y = self._local.matmul_add(ext, _padded(z, ext.shape[0]), alpha=alpha, beta=beta, shift=shift)
         return y[: self.num_rows]
 
     def matmul(self, x: torch.Tensor) -> torch.Tensor:
@@ -583,21 +588,31 @@ class ShardedOperator(SparseOperator):
 
     def matmul_add(self, x: torch.Tensor, z: Optional[torch.Tensor] = None, *, alpha: float = 1.0,
                    beta: float = 1.0, shift: float = 0.0) -> torch.Tensor:
-        """``alpha A x + shift x + beta z`` on the owned rows. Collective.
+        """``alpha A x + shift x + beta z`` on the owned rows: one exchange and one fused pass of
+        the local block's :meth:`SparseOperator.matmul_add` (z gets zero halo rows appended when
+        the shard has a halo). Collective.
 
-        Hermitian operators: one exchange and one fused local pass, in one autograd function
-        whose backward is the same fused sharded product. Others: the product, then the sums.
+        Hermitian operators run in one autograd function whose backward is the same fused
+        sharded product; others chain the exchange (backward: the reverse exchange) with the
+        local fused product (backward: its conjugate transpose, alpha A^H g + shift g, and beta g).
         """
+        self._check_x(x)
+        if z is not None and (not isinstance(z, torch.Tensor) or tuple(z.shape) != tuple(x.shape)):
+            raise GraphInputError(f"z must be None or a tensor of x's shape {tuple(x.shape)} (the owned rows); "
+                                  f"got {tuple(z.shape) if isinstance(z, torch.Tensor) else type(z).__name__}")
+        for name, value in (("alpha", alpha), ("shift", shift), ("beta", beta)):
+            # (comparisons rather than math.isfinite, which torch.compile cannot trace on constants)
+            if isinstance(value, bool) or not isinstance(value, numbers.Real) or not -math.inf < value < math.inf:
+                raise GraphInputError(f"{name} must be a finite real number; got {value!r}")
+        alpha, shift, beta = float(alpha), float(shift), float(beta)
         if self.hermitian:
-            self._check_x(x)
-            return _ShardedHermitianProduct.apply(x, z, self, float(alpha), float(shift), float(beta))
-        y = self.matmul(x)
-        y = y.mul(alpha) if alpha != 1 else y
-        if shift:
-            y = y + shift * x
-        if z is not None and beta:
-            y = y + beta * z
-        return y
+            return _ShardedHermitianProduct.apply(x, z, self, alpha, shift, beta)
+        ext = self._extended(x, halo_exchange(self._shard._plan, x))
+        if ext.shape[0] == 0:  # an empty part: no rows, but the exchange stays in the backward
+            y = _no_rows(ext, torch.promote_types(x.dtype, self.dtype))
+            return y if z is None else y + beta * z
+        return self._local.matmul_add(ext, _padded(z, ext.shape[0]), alpha=alpha, beta=beta,
+                                      shift=shift)[: self.num_rows]
 
     def collective_max_eigenvalue(self, *, tol: float = 1e-8, max_steps: int = 300) -> float:
         r"""Collective: the largest eigenvalue, by Lanczos on the distributed vectors.
