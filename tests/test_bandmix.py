@@ -195,3 +195,32 @@ def test_magnetic_gradcheck_and_float32():
 def test_magnetic_bad_arguments(kwargs, match):
     with pytest.raises(GraphInputError, match=match):
         BandMix(3, 4, (1,), 2, **kwargs)
+
+
+def test_charge_and_phase_travel_in_the_state_dict():
+    # the charge and phase choose the band-pass diffusion T(q) (operators.diffusion), so a state
+    # trained on one must not load into a layer built on another
+    import io
+
+    layer = BandMix(3, 4, (1,), 2, charge=0.25, phase="relative", dtype=torch.float64)
+    buf = io.BytesIO()
+    torch.save(layer.state_dict(), buf)
+    buf.seek(0)
+    state = torch.load(buf, weights_only=True)
+    assert float(state["fixed_charge"]) == 0.25 and int(state["phase_code"]) == 2  # 2: "relative"
+    BandMix(3, 4, (1,), 2, charge=0.25, phase="relative", dtype=torch.float64).load_state_dict(state)
+    with pytest.raises(GraphInputError, match=r"state_dict was saved from a BandMix with phase='relative' but this "
+                                              r"layer has phase='sign'; build the layer with phase='relative'"):
+        BandMix(3, 4, (1,), 2, charge=0.25, phase="sign", dtype=torch.float64).load_state_dict(state)
+    with pytest.raises(GraphInputError, match=r"state_dict was saved from a BandMix with charge 0.25 but this layer "
+                                              r"has charge 0.1; build the layer with charge=0.25"):
+        BandMix(3, 4, (1,), 2, charge=0.1, phase="relative", dtype=torch.float64).load_state_dict(state)
+    with pytest.raises(GraphInputError, match=r"state_dict was saved from a BandMix with charge 0.25 but this layer "
+                                              r"has charge None \(symmetric band-pass channels\)"):
+        BandMix(3, 4, (1,), 2, dtype=torch.float64).load_state_dict(state)
+    # older layout (weights only, built by hand): loads strictly with the layer's own charge and phase
+    g, x = _graph(), _x()
+    fresh = BandMix(3, 4, (1,), 2, charge=0.25, phase="relative", dtype=torch.float64)
+    fresh.load_state_dict({k: state[k] for k in ("weight", "bias", "attention")})
+    torch.testing.assert_close(fresh(x, g), layer(x, g))
+    assert float(fresh.fixed_charge) == 0.25 and int(fresh.phase_code) == 2

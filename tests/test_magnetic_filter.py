@@ -30,8 +30,8 @@ from phasorgraph.nn import magnetic as magnetic_module
 
 
 def weights_of(layer):
-    """The state_dict without the saved fixed charge, to move weights between layer kinds."""
-    return {k: v for k, v in layer.state_dict().items() if k != "fixed_charge"}
+    """The state_dict without the saved fixed charge and phase, to move weights between layer kinds."""
+    return {k: v for k, v in layer.state_dict().items() if k not in ("fixed_charge", "phase_code")}
 
 
 @pytest.mark.parametrize("check", GENERIC_CHECKS, ids=lambda f: f.__name__)
@@ -274,6 +274,51 @@ def test_fixed_and_banked_charges_travel_in_the_state_dict():
         MagneticFilter(3, 4, order=1, charge=LearnedCharge(start=[0.1, 0.2])).load_state_dict(state)
     # a float32 copy of the bank (module.float() casts buffers) still loads: compared to float32 precision
     MagneticFilter(3, 4, order=1, charge=[0.1, 0.25]).load_state_dict({k: v.float() for k, v in state.items()})
+
+
+@pytest.mark.parametrize("charge", [0.25, LearnedCharge(start=0.1)], ids=["fixed", "learned"])
+def test_the_phase_travels_in_the_state_dict(charge):
+    # the phase chooses the operator (operators.magnetic_adjacency), so a state trained on one
+    # phase must not load into a layer of another
+    state = _saved(MagneticFilter(3, 4, order=1, charge=charge, phase="relative"))
+    assert state["phase_code"].dtype == torch.int64 and int(state["phase_code"]) == 2   # 0 difference, 1 sign, 2 relative
+    MagneticFilter(3, 4, order=1, charge=charge, phase="relative").load_state_dict(state)
+    for phase in ("difference", "sign"):
+        with pytest.raises(GraphInputError, match=rf"state_dict was saved from a MagneticFilter with phase='relative' "
+                                                  rf"but this layer has phase='{phase}'; build the layer with "
+                                                  rf"phase='relative'"):
+            MagneticFilter(3, 4, order=1, charge=charge, phase=phase).load_state_dict(state)
+    with pytest.raises(GraphInputError, match=r"state_dict holds phase_code tensor\(7\); a saved phase_code is one "
+                                              r"number: 0 \(difference\), 1 \(sign\), 2 \(relative\)"):
+        MagneticFilter(3, 4, order=1, charge=charge, phase="relative").load_state_dict(
+            {**state, "phase_code": torch.tensor(7)})
+    # a float copy of the whole state (state_dict values cast with .float()) still reads
+    MagneticFilter(3, 4, order=1, charge=charge, phase="relative").load_state_dict(
+        {k: v.float() for k, v in state.items()})
+
+
+def test_a_state_dict_in_the_older_layout_loads_strictly_with_the_layers_own_charge_and_phase():
+    # built by hand as saved before the fixed_charge and phase_code buffers existed: weights
+    # and bias only (fixed charge) or weights, bias and charge_logit (learned charge)
+    g, _ = reference_graph()
+    x = features(7, 3, torch.float64, False)
+    torch.manual_seed(0)
+    old = MagneticFilter(3, 4, order=2, charge=[0.1, 0.25], phase="sign", dtype=torch.float64)
+    weights = {"weight": old.weight.detach().clone(), "bias": old.bias.detach().clone()}
+    layer = MagneticFilter(3, 4, order=2, charge=[0.1, 0.25], phase="sign", dtype=torch.float64)
+    layer.load_state_dict(weights)                               # strict=True: nothing missing
+    assert layer.fixed_charge.tolist() == [0.1, 0.25] and int(layer.phase_code) == 1
+    torch.testing.assert_close(layer(x, g), old(x, g))
+    learned_old = MagneticFilter(3, 4, order=2, charge=LearnedCharge(start=0.2), phase="relative",
+                                 dtype=torch.float64)
+    learned = MagneticFilter(3, 4, order=2, charge=LearnedCharge(start=0.05), phase="relative", dtype=torch.float64)
+    learned.load_state_dict({"weight": learned_old.weight.detach(), "bias": learned_old.bias.detach(),
+                             "charge_logit": learned_old.charge_logit.detach()})
+    torch.testing.assert_close(learned(x, g), learned_old(x, g))
+    # the older layout inside a bigger model (prefixed keys)
+    model = torch.nn.Sequential(MagneticFilter(3, 4, order=2, charge=[0.1, 0.25], phase="sign", dtype=torch.float64))
+    model.load_state_dict({"0." + k: v for k, v in weights.items()})
+    torch.testing.assert_close(model[0](x, g), old(x, g))
 
 
 def test_freeze_charge_keeps_the_output_and_loads_into_a_fixed_layer():

@@ -172,6 +172,74 @@ def derived(op, key: tuple, build: Callable[[], Any]) -> Any:
     return entry[key]
 
 
+# ---------------------------------------------------------------------- saved options
+#: the saved form of the magnetic phase (buffer ``phase_code``, int64, 0-dim): a fixed table that
+#: is part of the state_dict format (a new phase is appended, the codes never change)
+PHASE_CODES = {"difference": 0, "sign": 1, "relative": 2}
+
+
+def phase_buffer(phase: str, device) -> torch.Tensor:
+    """The 0-dim int64 ``phase_code`` of a (checked) phase name."""
+    return torch.tensor(PHASE_CODES[phase], dtype=torch.int64, device=device)
+
+
+def _saved_phase(value) -> str:
+    """The phase name of a saved ``phase_code`` (any real dtype: a ``.float()`` copy still reads)."""
+    names = {code: name for name, code in PHASE_CODES.items()}
+    ok = isinstance(value, torch.Tensor) and value.numel() == 1 and value.device.type != "meta" \
+        and not value.is_complex() and float(value) in names
+    if not ok:
+        raise GraphInputError(f"state_dict holds phase_code {value_text(value)}; a saved phase_code is one number: "
+                              + ", ".join(f"{c} ({n})" for n, c in PHASE_CODES.items()))
+    return names[int(value)]
+
+
+def _saved_charge(value):
+    """A saved ``fixed_charge`` as a float (0-dim) or a list of floats."""
+    if not isinstance(value, torch.Tensor) or value.device.type == "meta" or value.is_complex() \
+            or not value.dtype.is_floating_point:
+        raise GraphInputError(f"state_dict holds fixed_charge {value_text(value)}; a saved fixed_charge is a real "
+                              f"float tensor of charges in [0, 0.5]")
+    return float(value) if value.dim() == 0 else [float(v) for v in value.detach().cpu().reshape(-1).tolist()]
+
+
+def check_saved_options(layer: str, state_dict: dict, prefix: str, own: dict) -> dict:
+    r"""Check the construction options a state_dict was saved with against a layer's own.
+
+    ``own`` maps the layer's option buffers (``"fixed_charge"``, ``"phase_code"``) to pairs
+    ``(value, buffer)``: the option as the layer holds it (the phase name; the charge as a float
+    or a list of floats) and the buffer itself. A saved buffer that disagrees raises
+    :class:`GraphInputError` naming the option, the saved value and the layer's (charges compared
+    to the precision they were saved in: a float32 copy keeps about 7 digits). A buffer the
+    state_dict lacks (saved before the buffer existed) is filled with the layer's own, so an
+    older state_dict loads with ``strict=True``.
+
+    Returns:
+        the state_dict to load: the one given, or a copy with the missing buffers filled in.
+    """
+    filled = None
+    for name, (now, mine) in own.items():
+        key = prefix + name
+        saved = state_dict.get(key)
+        if saved is None:
+            filled = dict(state_dict) if filled is None else filled
+            filled[key] = mine.detach().clone()
+            continue
+        if name == "phase_code":
+            was = _saved_phase(saved)
+            if was != now:
+                raise GraphInputError(f"state_dict was saved from a {layer} with phase={was!r} but this layer has "
+                                      f"phase={now!r}; build the layer with phase={was!r}")
+        else:
+            was = _saved_charge(saved)
+            a, b = (was if isinstance(was, list) else [was]), (now if isinstance(now, list) else [now])
+            rel = 1e-12 if saved.dtype == torch.float64 else 1e-6
+            if len(a) != len(b) or any(abs(u - v) > rel * max(1.0, abs(v)) for u, v in zip(a, b)):
+                raise GraphInputError(f"state_dict was saved from a {layer} with charge {was} but this layer has "
+                                      f"charge {now}; build the layer with charge={was}")
+    return state_dict if filled is None else filled
+
+
 # ---------------------------------------------------------------------- parameters
 def empty_parameter(shape: tuple, factory: dict) -> nn.Parameter:
     """``nn.Parameter(torch.empty(shape, **factory))``, refused before allocating when it cannot fit.

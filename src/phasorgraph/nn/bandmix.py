@@ -13,8 +13,8 @@ from .. import operators
 from ..errors import GraphInputError
 from ._diffusion import diffusion_powers, dyadic_bands
 from .._checks import check_flag
-from ._layer import (MAX_STEPS, check_count, check_features, check_graph_like, check_scales, empty_parameter,
-                     factory_kwargs)
+from ._layer import (MAX_STEPS, check_count, check_features, check_graph_like, check_saved_options, check_scales,
+                     empty_parameter, factory_kwargs, phase_buffer)
 
 __all__ = ["BandMix"]
 
@@ -88,6 +88,10 @@ class BandMix(nn.Module):
         attention (Tensor): (2, out_channels), rows :math:`a_1, a_2`, uniform in
             :math:`\pm 1/\sqrt{out}`.
         last_attention (Tensor or None): the (N, C) weights of the last forward (detached).
+        fixed_charge, phase_code: with a charge, 0-dim buffers saved in the state_dict: q
+            (float64) and the phase (int64: 0 "difference", 1 "sign", 2 "relative"). Loading a
+            state saved with another charge or phase raises GraphInputError naming both; one
+            saved without them (before they existed) loads with the layer's own.
 
     References:
         Y. Min et al., NeurIPS 2020.
@@ -118,8 +122,27 @@ class BandMix(nn.Module):
         else:
             self.register_parameter("bias", None)
         self.attention = empty_parameter((2, self.out_channels), factory)
+        if self.charge is not None:
+            # saved with the weights, so that a state_dict says which diffusion it was trained on
+            where = self.weight.device
+            self.register_buffer("fixed_charge", torch.tensor(self.charge, dtype=torch.float64, device=where))
+            self.register_buffer("phase_code", phase_buffer(self.phase, where))
         self.last_attention = None
         self.reset_parameters()
+
+    def _load_from_state_dict(self, state_dict, prefix, local_metadata, strict, missing_keys, unexpected_keys,
+                              error_msgs):
+        saved = state_dict.get(prefix + "fixed_charge")
+        if self.charge is None and saved is not None:
+            raise GraphInputError(
+                f"state_dict was saved from a BandMix with charge {saved.tolist()} but this layer has charge None "
+                f"(symmetric band-pass channels); build the layer with charge={saved.tolist()}"
+            )
+        if self.charge is not None:  # a state_dict saved before these buffers existed gets the layer's own
+            state_dict = check_saved_options("BandMix", state_dict, prefix, {
+                "fixed_charge": (self.charge, self.fixed_charge), "phase_code": (self.phase, self.phase_code)})
+        super()._load_from_state_dict(state_dict, prefix, local_metadata, strict, missing_keys, unexpected_keys,
+                                      error_msgs)
 
     def reset_parameters(self) -> None:
         with torch.no_grad():

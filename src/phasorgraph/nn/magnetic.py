@@ -12,7 +12,7 @@ from torch import nn
 from ..errors import GraphInputError
 from ..operators import check_phase, magnetic_laplacian
 from ._chebyshev import ChebyshevBase
-from ._layer import COMPLEX_OF, check_features, check_graph_like, empty_output
+from ._layer import COMPLEX_OF, check_features, check_graph_like, check_saved_options, empty_output, phase_buffer
 
 __all__ = ["MagneticFilter", "LearnedCharge"]
 
@@ -184,9 +184,11 @@ class MagneticFilter(ChebyshevBase):
     DistributedDataParallel can wrap the layer.
 
     Saving: a fixed charge or bank is kept in the ``state_dict`` as the buffer ``fixed_charge``
-    (G,) float64 (a learned one as ``charge_logit``). Loading a state into a layer with other
-    fixed charges, or a learned state into a fixed-charge layer (or the reverse), raises
-    :class:`~phasorgraph.GraphInputError` naming both.
+    (G,) float64 (a learned one as ``charge_logit``), the phase as the buffer ``phase_code``
+    (0-dim int64: 0 "difference", 1 "sign", 2 "relative"). Loading a state into a layer with
+    other fixed charges or another phase, or a learned state into a fixed-charge layer (or the
+    reverse), raises :class:`~phasorgraph.GraphInputError` naming both. A state_dict saved
+    before ``fixed_charge`` or ``phase_code`` existed loads (strictly) with the layer's own.
 
     Args:
         in_channels: C_in.
@@ -215,6 +217,7 @@ class MagneticFilter(ChebyshevBase):
         bias: (C_out,) (or (C_out, 2)), same distribution, or None.
         charge_logit: (G,) when the charge is learned, else absent.
         fixed_charge: (G,) float64 buffer when the charge is fixed, else absent.
+        phase_code: 0-dim int64 buffer, the phase (0 "difference", 1 "sign", 2 "relative").
         charge: the current charge(s) as a tensor: 0-dim when one float was given, else (G,).
             Differentiable when learned.
         learns_charge (bool): whether the charge is a parameter.
@@ -254,6 +257,8 @@ class MagneticFilter(ChebyshevBase):
                 f"gets out_channels // {groups} channels; got out_channels = {self.out_channels}"
             )
         self.phase = check_phase(phase)
+        # saved with the weights, so that a state_dict says which operator it was trained on
+        self.register_buffer("phase_code", phase_buffer(self.phase, self.weight.device))
         if self.learns_charge:
             self.charge_logit = nn.Parameter(torch.empty(groups, dtype=self.weight.dtype, device=self.weight.device))
         else:
@@ -328,15 +333,12 @@ class MagneticFilter(ChebyshevBase):
                 "call freeze_charge() on the trained layer before saving, or build this layer with "
                 "charge=LearnedCharge(...)"
             )
-        if not self.learns_charge and saved is not None:
-            values = _as_list(saved)
-            rel = 1e-6 if saved.dtype != torch.float64 else 1e-12   # a float32 copy keeps ~7 digits
-            if len(values) != self.num_charges or any(abs(a - b) > rel * max(1.0, abs(b))
-                                                      for a, b in zip(values, self.initial_charge)):
-                raise GraphInputError(
-                    f"state_dict was saved from a MagneticFilter with charge {values} but this layer has "
-                    f"charge {list(self.initial_charge)}; build the layer with charge={values}"
-                )
+        # then the fixed charges and the phase; a state_dict saved before these buffers existed
+        # gets the layer's own (its fixed charges, its phase) and loads with strict=True
+        own = {"phase_code": (self.phase, self.phase_code)}
+        if not self.learns_charge:
+            own["fixed_charge"] = (list(self.initial_charge), self.fixed_charge)
+        state_dict = check_saved_options("MagneticFilter", state_dict, prefix, own)
         super()._load_from_state_dict(state_dict, prefix, local_metadata, strict, missing_keys, unexpected_keys,
                                       error_msgs)
 
