@@ -26,9 +26,10 @@ def _check_index(index: torch.Tensor, num_groups) -> int:
     if num_groups is not None:
         num_groups = check_node_count(check_int("num_graphs", num_groups), what="a per-graph readout",
                                         bytes_per_node=8, name="num_graphs")
-    if index.numel() and int(index.min()) < 0:
+    lo, hi = torch.stack(torch.aminmax(index)).tolist() if index.numel() else (0, -1)  # one read of the values
+    if lo < 0:
         raise GraphInputError("graph_index must be non-negative")
-    largest = int(index.max()) + 1 if index.numel() else 0
+    largest = hi + 1
     if num_groups is None:
         return largest
     if largest > num_groups:
@@ -52,30 +53,48 @@ def _expand(index: torch.Tensor, x: torch.Tensor) -> torch.Tensor:
     return index.to(torch.int64).view((-1,) + (1,) * (x.dim() - 1)).expand_as(x)
 
 
-def group_sum(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
-    """Sum of the rows of each group: (S, ...)."""
-    s = check_groups(x, index, num_groups)
-    out = x.new_zeros((s,) + tuple(x.shape[1:]))
-    return out.index_add(0, index.to(torch.int64), x)
+def _sum(x: torch.Tensor, index: torch.Tensor, s: int) -> torch.Tensor:
+    return x.new_zeros((s,) + tuple(x.shape[1:])).index_add(0, index.to(torch.int64), x)
+
+
+def _count(index: torch.Tensor, s: int) -> torch.Tensor:
+    # (index_add rather than bincount, whose output size depends on the values: no compiled-graph break)
+    return torch.zeros(s, dtype=torch.int64, device=index.device).index_add_(
+        0, index.to(torch.int64), torch.ones_like(index, dtype=torch.int64))
+
+
+def _groups(x: torch.Tensor, index: torch.Tensor, num_groups, checked: bool) -> int:
+    """The group count: validated here, or, with ``checked``, ``num_groups`` as the caller's
+    own :func:`check_groups` returned it (the values of ``index`` are read once per call chain)."""
+    return int(num_groups) if checked else check_groups(x, index, num_groups)
+
+
+def group_sum(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None, *,
+              checked: bool = False) -> torch.Tensor:
+    """Sum of the rows of each group: (S, ...). ``checked=True``: ``num_groups`` is the result of
+    the caller's :func:`check_groups` on the same ``x`` and ``index`` (no second validation)."""
+    return _sum(x, index, _groups(x, index, num_groups, checked))
 
 
 def group_count(index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
     """Rows per group: (S,) int64."""
-    s = _check_index(index, num_groups)
-    return torch.bincount(index.to(torch.int64), minlength=s)
+    return _count(index, _check_index(index, num_groups))
 
 
-def group_mean(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
-    """Mean of the rows of each group (0 for an empty group): (S, ...)."""
-    s = check_groups(x, index, num_groups)
-    total = group_sum(x, index, s)
-    count = group_count(index, s).clamp(min=1).to(total.real.dtype if total.is_complex() else total.dtype)
+def group_mean(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None, *,
+               checked: bool = False) -> torch.Tensor:
+    """Mean of the rows of each group (0 for an empty group): (S, ...). ``checked`` as for :func:`group_sum`."""
+    s = _groups(x, index, num_groups, checked)
+    total = _sum(x, index, s)
+    count = _count(index, s).clamp(min=1).to(total.real.dtype if total.is_complex() else total.dtype)
     return total / count.view((-1,) + (1,) * (x.dim() - 1))
 
 
-def group_max(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None) -> torch.Tensor:
-    """Elementwise max over the rows of each group (0 for an empty group): (S, ...). Real x only."""
-    s = check_groups(x, index, num_groups)
+def group_max(x: torch.Tensor, index: torch.Tensor, num_groups: int | None = None, *,
+              checked: bool = False) -> torch.Tensor:
+    """Elementwise max over the rows of each group (0 for an empty group): (S, ...). Real x only.
+    ``checked`` as for :func:`group_sum`."""
+    s = _groups(x, index, num_groups, checked)
     if x.is_complex():
         raise GraphInputError("x must be real for a max readout; take the modulus or real part first")
     out = x.new_zeros((s,) + tuple(x.shape[1:]))

@@ -503,6 +503,9 @@ class ShardedOperator(SparseOperator):
                  max_eigenvalue: Optional[float] = None):
         n_own = shard.num_rows
         self.matrix = _owned_rows(local.matrix, n_own)
+        # plain Python facts (as SparseOperator keeps them): reading them never touches the sparse
+        # matrix, which torch.compile cannot trace
+        self._dtype, self._device = local.dtype, local.device
         self.hermitian = local.hermitian
         self.spectrum = spectrum
         self.kind = local.kind

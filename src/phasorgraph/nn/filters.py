@@ -266,12 +266,15 @@ def _cached_basis(op: SparseOperator, dtype: torch.dtype, device, max_nodes: int
     return lam, derived(op, ("fourier_basis", dtype, str(device)), lambda: U.to(device=device, dtype=dtype))
 
 
-def _components(op: SparseOperator) -> torch.Tensor:
-    """(N,) int64 connected-component label of each node in the pattern of ``op`` (kept like the basis).
+def _components(op: SparseOperator, device) -> tuple:
+    """((N,) int64 connected-component label of each node in the pattern of ``op`` on ``device``,
+    the number of components), kept like the basis.
 
     An operator with a dense low-rank term couples every node: one component.
     """
-    return derived(op, ("components",), lambda: _component_labels(op))
+    labels = derived(op, ("components",), lambda: _component_labels(op))
+    count = derived(op, ("components", "count"), lambda: int(labels.max()) + 1 if labels.numel() else 0)
+    return derived(op, ("components", str(device)), lambda: labels.to(device)), count
 
 
 def _component_labels(op: SparseOperator) -> torch.Tensor:
@@ -284,25 +287,25 @@ def _component_labels(op: SparseOperator) -> torch.Tensor:
     return torch.as_tensor(connected_components(pattern, directed=False)[1].astype(np.int64))
 
 
-def _poison_components(out: torch.Tensor, x: torch.Tensor, op: SparseOperator) -> torch.Tensor:
-    """NaN on every row of ``out`` whose connected component holds a non-finite entry of ``x``.
+def _poison_components(out: torch.Tensor, bad_rows: torch.Tensor, op: SparseOperator) -> torch.Tensor:
+    """NaN on every row of ``out`` whose connected component holds a row in ``bad_rows`` (N,) bool.
 
     The dense Fourier basis mixes all nodes (a product ``0 * NaN`` is NaN), so the filter runs
     on x with its non-finite entries set to 0 and the garbage is put back, as NaN, exactly on
-    the components it reaches through the operator: no other component sees it.
+    the components it reaches through the operator: no other component sees it. Shapes never
+    depend on the data (torch.compile traces it without a break).
     """
-    bad_rows = ~torch.isfinite(x).all(dim=1).cpu()
-    labels = _components(op)
-    hit = torch.zeros(int(labels.max()) + 1 if labels.numel() else 0, dtype=torch.bool)
-    hit[labels[bad_rows]] = True
-    rows = hit[labels].to(out.device)
+    labels, count = _components(op, out.device)
+    hit = torch.zeros(count, dtype=out.real.dtype, device=out.device).index_add_(0, labels, bad_rows.to(out.real.dtype))
+    rows = (hit > 0).index_select(0, labels)
     return torch.where(rows.unsqueeze(1), torch.full_like(out, float("nan")), out)
 
 
-def _hat_basis(lam: torch.Tensor, knots: torch.Tensor) -> torch.Tensor:
+def _hat_basis(lam: torch.Tensor, knots: Sequence[float]) -> torch.Tensor:
     """(N, K) piecewise-linear interpolation weights: g(lam_n) = sum_k B[n, k] g_k (np.interp)."""
-    k = knots.numel()
-    lam = lam.clamp(float(knots[0]), float(knots[-1]))
+    k = len(knots)
+    lam = lam.clamp(knots[0], knots[-1])
+    knots = torch.tensor(knots, dtype=torch.float64)
     right = torch.searchsorted(knots, lam, right=True).clamp(1, k - 1)
     left = right - 1
     t = (lam - knots[left]) / (knots[right] - knots[left])
@@ -444,8 +447,7 @@ class SpectralMultiplier(nn.Module):
         """The multipliers g_io at the given eigenvalues, shape (N, C_in, C_out) (interpolated only)."""
         if self.per_eigenvalue:
             return self.weight
-        knots = torch.tensor(self.knots, dtype=torch.float64)
-        B = _hat_basis(torch.as_tensor(eigenvalues, dtype=torch.float64).cpu(), knots)
+        B = _hat_basis(torch.as_tensor(eigenvalues, dtype=torch.float64).cpu(), self.knots)
         B = B.to(device=self.weight.device, dtype=self.weight.dtype)
         return torch.einsum("nk,kio->nio", B, self.weight)
 
@@ -473,23 +475,26 @@ class SpectralMultiplier(nn.Module):
         if not self.per_eigenvalue and n:
             low, high = self.interval
             tol = 1e-6 * max(1.0, abs(low), abs(high))
-            if float(lam[0]) < low - tol or float(lam[-1]) > high + tol:
+            lo, hi = derived(op, ("fourier_basis", "ends"), lambda: (float(lam[0]), float(lam[-1])))
+            if lo < low - tol or hi > high + tol:
                 raise GraphInputError(
-                    f"op has eigenvalues in [{float(lam[0]):.4g}, {float(lam[-1]):.4g}] but the knots cover "
+                    f"op has eigenvalues in [{lo:.4g}, {hi:.4g}] but the knots cover "
                     f"interval = ({low}, {high}); build the layer with a wider interval"
                 )
-        finite = bool(torch.isfinite(x).all())
-        x_in = x if finite else torch.where(torch.isfinite(x), x, torch.zeros_like(x))
+        # non-finite entries are filtered as 0 and put back as NaN on their components below
+        # (always, without reading a value: nothing here breaks a compiled graph)
+        finite = torch.isfinite(x)
+        x_in = torch.where(finite, x, torch.zeros_like(x))
         Uh = U.conj().T if U.is_complex() else U.T
         xh = bilinear(torch.matmul, Uh, x_in)                    # (N, C_in)
         if self.per_eigenvalue:
             yh = bilinear(lambda a, b: torch.bmm(a.unsqueeze(1), b).squeeze(1), xh, self.weight)
         else:
-            knots = torch.tensor(self.knots, dtype=torch.float64)
-            B = _hat_basis(lam, knots).to(device=device, dtype=precision)     # (N, K)
+            B = derived(op, ("hat_basis", self.knots), lambda: _hat_basis(lam, self.knots))
+            B = B.to(device=device, dtype=precision)                           # (N, K)
             z = (B.unsqueeze(2) * xh.unsqueeze(1)).reshape(n, -1)              # (N, K C_in)
             yh = bilinear(torch.matmul, z, self.weight.reshape(-1, self.out_channels))
         out = bilinear(torch.matmul, U, yh)
-        if not finite:  # garbage in stays visible where it belongs: its own component only
-            out = _poison_components(out, x, op)
+        # garbage in stays visible where it belongs: its own component only
+        out = _poison_components(out, ~finite.all(dim=1), op)
         return out if self.bias is None else out + self.bias

@@ -90,28 +90,29 @@ class MomentReadout(nn.Module):
             if num_graphs not in (None, 1):
                 raise GraphInputError(f"num_graphs must be None or 1 when graph_index is None; got {num_graphs!r}")
             graph_index = torch.zeros(x.shape[0], dtype=torch.int64, device=x.device)
-            num_graphs = 1
-        g = check_groups(x, graph_index, num_graphs)
+            g = 1  # valid by construction: no value of it is read (no compiled-graph break)
+        else:
+            g = check_groups(x, graph_index, num_graphs)  # reads the values once
         index = graph_index.to(torch.int64)
         # Moments of z = x / s with s the largest |x| of each graph and channel (a constant for
         # autograd: every output is exactly s^k times the moment of z, or, standardized, free of
         # s). |z| <= 1, so no power overflows or underflows: finite float32 features around 1e10
         # or 1e-12 give finite standardized moments (x^4 itself would overflow float32 at 1e10).
-        s = group_max(x.detach().abs(), index, g)
+        s = group_max(x.detach().abs(), index, g, checked=True)
         s = torch.where(s > 0, s, torch.ones_like(s))  # an all-zero channel: z = x = 0
         z = x / s.index_select(0, index)
-        mean_z = group_mean(z, index, g)
+        mean_z = group_mean(z, index, g, checked=True)
         out = [mean_z * s]
         if self.moments >= 2:
             centered = z - mean_z.index_select(0, index)
-            var_z = group_mean(centered * centered, index, g)
+            var_z = group_mean(centered * centered, index, g, checked=True)
             out.append(var_z * s * s)
             if self.moments >= 3:
                 # constant on the graph: standard deviation below 8 eps of the largest |x| (|z| <= 1)
                 constant = var_z <= (_CONSTANT_ULPS * torch.finfo(x.dtype).eps) ** 2
                 safe_var = torch.where(constant, torch.ones_like(var_z), var_z)
                 for k in range(3, self.moments + 1):
-                    mk = group_mean(centered ** k, index, g)
+                    mk = group_mean(centered ** k, index, g, checked=True)
                     if self.normalized:
                         mk = torch.where(constant, torch.zeros_like(mk), mk / safe_var ** (k / 2))
                     else:
