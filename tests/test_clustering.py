@@ -13,9 +13,12 @@ import pytest
 import torch
 from hypothesis import given
 from hypothesis import strategies as st
+import scipy.sparse as sp
+import scipy.sparse.linalg  # noqa: F401  (sp.linalg)
 
-from phasorgraph import DirectedGraph, GraphInputError, adjusted_rand_index, cluster_nodes, magnetic_laplacian
-from phasorgraph.clustering import _embedding, _smallest_eigenvectors, _to_scipy
+from phasorgraph import (DirectedGraph, GraphInputError, adjusted_rand_index, cluster_nodes, magnetic_laplacian,
+                         normalized_laplacian)
+from phasorgraph.clustering import _embedding, _smallest_eigenvectors
 from phasorgraph.data import directed_block_model
 
 
@@ -107,14 +110,58 @@ def test_lanczos_path_matches_dense_eigenvectors():
     # source: numpy.linalg.eigh on the dense Laplacian; the eigenvector of the smallest
     # eigenvalue (the block signal, well separated) agrees up to a unit factor (its projector)
     g, _ = directed_block_model([110, 110, 110], 0.1, _cyclic_flow(3, 0.95), seed=3)
-    lap = _to_scipy(magnetic_laplacian(g, 1 / 3, dtype=torch.complex128))
-    vals, vecs = np.linalg.eigh(lap.toarray())
+    lap = magnetic_laplacian(g, 1 / 3, dtype=torch.complex128)
+    vals, vecs = np.linalg.eigh(lap.to_dense().numpy())
     assert vals[1] - vals[0] > 0.1  # a gap, so the eigenvector is well defined
     u = _smallest_eigenvectors(lap, 1, np.random.default_rng(0))
     dense = vecs[:, :1]
-    assert np.abs(u @ u.conj().T - dense @ dense.conj().T).max() < 1e-4
+    assert np.abs(u @ u.conj().T - dense @ dense.conj().T).max() < 1e-6
     emb = _embedding(u)
     assert np.allclose(np.linalg.norm(emb, axis=1), 1.0)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_lanczos_path_spans_the_dense_eigenvectors_below_a_gap(seed):
+    # source: numpy.linalg.eigh. Four assortative blocks of slightly different densities: the
+    # four smallest eigenvalues (0 and three close ones near 0.3) lie well below the bulk (from
+    # about 0.6), so the span of their eigenvectors is well defined (Davis-Kahan) even though
+    # the three close ones are not, each on its own; k-means only sees that span
+    n = 800
+    density = np.full((4, 4), 8.0 / n)
+    np.fill_diagonal(density, np.array([60, 64, 68, 72]) / n)
+    g, _ = directed_block_model([n // 4] * 4, density, np.full((4, 4), 0.5), seed=1)
+    lap = normalized_laplacian(g, dtype=torch.float64)
+    vals, vecs = np.linalg.eigh(lap.to_dense().numpy())
+    assert vals[4] - vals[3] > 0.2 and vals[3] - vals[1] < 0.05
+    u = _smallest_eigenvectors(lap, 4, np.random.default_rng(seed))
+    dense = vecs[:, :4]
+    assert np.abs(u @ (u.conj().T @ dense) - dense).max() < 1e-5
+    np.testing.assert_allclose(u.conj().T @ u, np.eye(4), atol=1e-10)  # an orthonormal basis
+
+
+def test_default_vectors_need_few_lanczos_products():
+    # four blocks around a directed cycle, mean degree 40 (bench/clustering.py at 4000 nodes):
+    # one eigenvector carries the blocks, the other three default ones lie in the bulk of the
+    # spectrum, where any vector does as well and a tight Lanczos tolerance only costs products
+    # (125 products to a 1e-4 residual; 45 to 1 %, then a degree-6 filter on the block)
+    from phasorgraph import clustering
+
+    g, y = directed_block_model([1000] * 4, 0.01, _cyclic_flow(4, 0.95), seed=0)
+    eigsh, products = clustering.spla.eigsh, [0]
+
+    def counted(matrix, *args, **kwargs):
+        def matvec(v):
+            products[0] += 1
+            return matrix @ v
+        return eigsh(sp.linalg.LinearOperator(matrix.shape, matvec=matvec, dtype=matrix.dtype), *args, **kwargs)
+
+    clustering.spla.eigsh = counted
+    try:
+        labels = cluster_nodes(g, 4, charge=0.25, seed=0)
+    finally:
+        clustering.spla.eigsh = eigsh
+    assert products[0] <= 60
+    assert adjusted_rand_index(labels, y) > 0.95
 
 
 def test_cluster_nodes_small_cases_and_isolated_nodes():
