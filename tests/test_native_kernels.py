@@ -132,6 +132,11 @@ def test_every_tile_width_matches_dense_and_reference(vc, xc, width, dtype, pref
         torch.testing.assert_close(a, b, **tol)
 
 
+def test_compile_all_builds_every_kernel_for_both_precisions():
+    # 6 kernels x (float32, float64) + the transpose; a later call only loads the disk cache
+    assert _native.compile_all() == 13
+
+
 def test_lookahead_prefetches_only_without_locality():
     # a banded pattern (every column within 2 of its row) keeps gathered rows in cache: no
     # prefetch; a pattern whose columns sit half the matrix away (4096 rows of 512 bytes:

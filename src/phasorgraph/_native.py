@@ -53,6 +53,7 @@ __all__ = [
     "transpose_pattern",
     "row_blocks",
     "set_threads",
+    "compile_all",
     "LOCK",
 ]
 
@@ -485,3 +486,31 @@ def transpose_pattern(crow, col, num_cols):  # pragma: no cover
             t_col[dest] = i
             perm[dest] = k
     return t_crow, t_col, perm
+
+
+# ---------------------------------------------------------------------- ahead-of-use compilation
+def compile_all() -> int:
+    """Compile (or load from the disk cache) every kernel for float32 and float64; returns the count.
+
+    The first product of each kind in a fresh environment otherwise compiles its kernel then
+    (seconds each). ``make venv`` runs this once after installing, so tests and the first
+    training step start warm; calling it again only loads the cache.
+    """
+    count = 0
+    crow = np.array([0, 1, 2], dtype=np.int64)
+    col = np.array([1, 0], dtype=np.int64)
+    bounds = row_blocks(crow, 1)
+    for real in (np.float32, np.float64):
+        v = np.ones(2, dtype=real)
+        x, xc = np.ones((2, 3), dtype=real), np.ones((2, 6), dtype=real)
+        out, outc = np.empty((2, 3), dtype=real), np.empty((2, 6), dtype=real)
+        one, zero = real(1), real(0)
+        csr_real(bounds, crow, col, v, x, x, out, one, zero, zero, False, 0)
+        csr_complex(bounds, crow, col, v, v, xc, xc, outc, one, zero, zero, False, 0)
+        csr_complex_real_x(bounds, crow, col, v, v, x, outc, outc, one, zero, zero, False, 0)
+        csr_complex_real_part(bounds, crow, col, v, v, xc, out, one, zero, 0)
+        value_grad_real(bounds, crow, col, x, x, np.empty(2, dtype=real), one, 0)
+        value_grad_complex(bounds, crow, col, xc, xc, np.empty(2, dtype=real), np.empty(2, dtype=real), one, 0)
+        count += 6
+    transpose_pattern(crow, col, 2)
+    return count + 1
