@@ -26,6 +26,6 @@ def test_every_script_is_listed():
 def test_bench_script_runs_quick(script):
     env = dict(os.environ, PYTHONHASHSEED="0")
     res = subprocess.run([sys.executable, str(BENCH / script), "--quick", "--threads", "1"] if script in
-                         ("kernels.py", "layers.py") else [sys.executable, str(BENCH / script), "--quick"],
+                         ("kernels.py", "layers.py", "scan.py") else [sys.executable, str(BENCH / script), "--quick"],
                          cwd=BENCH.parent, env=env, capture_output=True, text=True, timeout=300)
     assert res.returncode == 0, res.stdout[-2000:] + res.stderr[-4000:]

@@ -25,6 +25,7 @@ from phasorgraph import (
     renormalized_adjacency,
 )
 from phasorgraph import magnetic_matmul
+from phasorgraph.operators import normalized_magnetic_values, orientation_signs
 from phasorgraph.data import GraphBatch, directed_block_model, directed_cycle, iterate_batches, split_link_orientation, split_nodes
 from phasorgraph.nn import (BandMix, ChebyshevFilter, ComplexToReal, DiffusionScattering, DiffusionWavelets, LearnedCharge,
                              MagneticFilter, ModReLU, MomentReadout, RenormalizedFilter, ScaleSelector, SpectralMultiplier)
@@ -365,6 +366,14 @@ CASES = [
      r"knots must be an int >= 2, a strictly increasing sequence of positions"),
     ("split fraction too small for one link", lambda: split_link_orientation(_g(), 0.1, 0.4),
      r"val_fraction = 0\.1 of the 3 eligible links rounds to 0 links; raise val_fraction to at least 0\.167"),
+    ("orientation flips of the wrong length", lambda: orientation_signs(_g(), [True, False]),
+     r"flip must be 3 booleans, one per linked node pair of the graph; got dtype torch.bool, shape \(2,\)"),
+    ("orientation flips as numbers", lambda: orientation_signs(_g(), [1, 0, 1]),
+     r"flip must be 3 booleans, one per linked node pair of the graph; got dtype torch.int64, shape \(3,\)"),
+    ("magnetic values at a charge above 0.5", lambda: normalized_magnetic_values(_g(), 0.6),
+     r"charge must lie in \[0, 0\.5\]; got 0\.6"),
+    ("magnetic values in a complex dtype", lambda: normalized_magnetic_values(_g(), 0.1, dtype=torch.complex64),
+     r"dtype must be torch.float32 or torch.float64 for this real operator; got torch.complex64"),
 ]
 
 

@@ -17,8 +17,11 @@ import phasorgraph as pg
 from phasorgraph import GraphInputError
 from phasorgraph.data import directed_block_model, split_link_orientation, split_nodes
 from phasorgraph.scan import charges as scan_mod
+from phasorgraph.operators import node_pairs, normalized_magnetic_values, orientation_signs
 from phasorgraph.scan import magnetic_chebyshev_terms, randomize_orientation, scan_charges
 from strategies import charges, directed_graphs
+
+import dense
 
 FLOW = [[0.5, 0.85, 0.85], [0.15, 0.5, 0.85], [0.15, 0.15, 0.5]]  # block a ships to block b > a
 NO_FLOW = [[0.5] * 3] * 3  # every edge points either way with probability 1/2
@@ -97,6 +100,72 @@ def test_property_randomized_orientation_keeps_as_and_the_charge_zero_terms(grap
     np.testing.assert_allclose(ha, hb, atol=1e-12)
 
 
+# ---------------------------------------------------------------------- permuted copies without a new graph
+def _same_flips(graph, seed):
+    """The randomly oriented copy and, drawn from an equal generator, the scan's per-non-zero signs."""
+    copy = randomize_orientation(graph, np.random.default_rng(seed))
+    flips = scan_mod._pair_flips(np.random.default_rng(seed), node_pairs(graph)[1])
+    return copy, orientation_signs(graph, flips, dtype=torch.float64)
+
+
+@given(directed_graphs(max_nodes=10), st.integers(0, 2**31 - 1), charges(),
+       st.sampled_from(["difference", "sign", "relative"]))
+def test_property_flipped_values_are_the_operator_of_the_randomly_oriented_graph(graph, seed, q, phase):
+    # reference: tests/dense.py builds I - D^-1/2 H(q) D^-1/2 (Zhang et al., NeurIPS 2021) from the
+    # edges of randomize_orientation(graph); the scan keeps the graph's pattern and real parts and
+    # multiplies the imaginary parts by orientation_signs (same generator, same flips)
+    copy, signs = _same_flips(graph, seed)
+    n = graph.num_nodes
+    st_ = graph.structure
+    re, im = normalized_magnetic_values(graph, q, phase=phase, dtype=torch.float64)
+    got = np.eye(n, dtype=complex)
+    np.add.at(got, (st_.rows.numpy(), st_.cols.numpy()), -(re + 1j * im * signs).numpy())
+    want = dense.normalized_magnetic_laplacian(dense.dense_adjacency(copy), q, phase)
+    np.testing.assert_allclose(got, want, atol=1e-12)
+
+
+@given(directed_graphs(max_nodes=10), st.integers(0, 2**31 - 1))
+def test_property_node_pairs_number_the_unordered_pairs_and_signs_follow_a_minus_a_transpose(graph, seed):
+    # reference: the definition, in plain Python: pairs {min, max} of the non-zeros numbered in
+    # sorted order; after reversal A - A^T of the copy equals sign * (A - A^T) on every non-zero
+    st_ = graph.structure
+    r, c = st_.rows.tolist(), st_.cols.tolist()
+    keys = sorted({(min(u, v), max(u, v)) for u, v in zip(r, c)})
+    pair, count = node_pairs(graph)
+    assert count == len(keys)
+    assert pair.tolist() == [keys.index((min(u, v), max(u, v))) for u, v in zip(r, c)]
+    copy, signs = _same_flips(graph, seed)
+    A, B = dense.dense_adjacency(graph), dense.dense_adjacency(copy)
+    np.testing.assert_allclose((B - B.T)[r, c], signs.numpy() * (A - A.T)[r, c], atol=1e-12)
+
+
+@pytest.mark.parametrize("phase", ["difference", "sign", "relative"])
+def test_features_of_a_permuted_copy_equal_those_built_on_the_randomized_graph(phase):
+    # reference: numpy.linalg.eigh of the dense magnetic Laplacian of randomize_orientation(graph)
+    # (tests/dense.py) and T_k(cos t) = cos(k t), at a few nodes; the fast path computes only the
+    # rows those nodes depend on (the last terms on restricted rows), with the copy's signs
+    g, _ = _flow_graph(seed=7, sizes=(30, 30), density=0.03, flow=[[0.5, 0.9], [0.1, 0.5]])
+    w = torch.linspace(0.2, 1.0, g.num_edges, dtype=torch.float64)
+    g = pg.DirectedGraph(g.source, g.target, w, g.num_nodes)  # unequal weights: all three phases differ
+    x = np.random.default_rng(2).standard_normal((g.num_nodes, 2))
+    nodes = np.array([3, 17, 41])
+    features = scan_mod._ChebyshevFeatures(g, torch.from_numpy(x), 3, phase, nodes=nodes, dtype=torch.complex128)
+    assert features.ops[3][1] is not None  # the restricted path runs
+    for seed in range(3):
+        copy, signs = _same_flips(g, seed)
+        got = features.terms(0.2, features.orientation(signs)).numpy()
+        L = dense.normalized_magnetic_laplacian(dense.dense_adjacency(copy), 0.2, phase)
+        lam, V = np.linalg.eigh(L)
+        theta = np.arccos(np.clip(lam - 1.0, -1.0, 1.0))
+        want = np.stack([(V * np.cos(k * theta)) @ (V.conj().T @ x) for k in range(4)], axis=1)[nodes]
+        np.testing.assert_allclose(got, want, atol=1e-10)
+        whole = magnetic_chebyshev_terms(copy, x, 0.2, order=3, phase=phase, dtype=torch.complex128).numpy()
+        np.testing.assert_allclose(got, whole[nodes], atol=1e-12)
+    # the unflipped graph, through the same object
+    np.testing.assert_allclose(features.terms(0.2).numpy(), magnetic_chebyshev_terms(
+        g, x, 0.2, order=3, phase=phase, dtype=torch.complex128).numpy()[nodes], atol=1e-12)
+
+
 # ---------------------------------------------------------------------- models and intervals
 def test_logistic_steps_reach_the_optimum_found_by_scipy():
     # the bound-Hessian steps against scipy.optimize.minimize (L-BFGS-B) on the same objective:
@@ -126,6 +195,28 @@ def test_logistic_steps_reach_the_optimum_found_by_scipy():
     W = scan_mod._logistic_weights(Zt, torch.nn.functional.one_hot(torch.from_numpy(y), C).double(), weight,
                                    gram[None, None], torch.from_numpy(lam), iterations=400)
     assert objective(W[0, 0].numpy().ravel()) == pytest.approx(ref.fun, abs=1e-6)
+
+
+def test_first_argmax_matches_torch_argmax_with_ties():
+    # reference: torch.argmax, which documents that ties give the first maximal index
+    logits = torch.randint(0, 3, (2, 4, 3, 50)).to(torch.float32)
+    torch.testing.assert_close(scan_mod._first_argmax(logits), logits.argmax(1))
+
+
+@pytest.mark.parametrize("task", ["classification", "regression"])
+def test_all_zero_design_columns_change_no_score(task):
+    # a column that is 0 in every row takes no part in any fit (its Gram row is 0); checked by
+    # scoring the same design with and without such columns
+    rng = np.random.default_rng(4)
+    n = 90
+    target = rng.integers(0, 3, n) if task == "classification" else rng.standard_normal(n)
+    Z = np.concatenate([np.ones((2, n, 1)), rng.standard_normal((2, n, 4))], axis=2)
+    Z[..., 1] += (target if task == "classification" else np.sign(target))[None]
+    padded = np.concatenate([Z[..., :2], np.zeros((2, n, 3)), Z[..., 2:]], axis=2)
+    test = scan_mod._folds(rng, n, 3, 2, target if task == "classification" else None, None)
+    models = scan_mod._FoldModels(target, test, task, 0.01, 15)
+    # (to rounding: BLAS results may depend on the arrays' memory alignment)
+    np.testing.assert_allclose(models.scores(Z), models.scores(padded), rtol=1e-12, atol=1e-12)
 
 
 def test_corrected_interval_is_the_nadeau_bengio_t_interval():

@@ -327,3 +327,24 @@ def test_sampled_product_agrees_with_closed_form(values_dtype, x_dtype):
     got = sparse._sampled_products(g, x, crow, col, values_dtype.is_complex)
     assert got.is_complex() == values_dtype.is_complex
     np.testing.assert_allclose(got.numpy(), expected, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("hermitian", [False, True])
+def test_pattern_operator_with_new_values_is_a_fresh_operator(hermitian):
+    # reference: numpy.einsum on the dense matrix of the new values, and torch.autograd.gradcheck
+    # of the product through the reused (transposed) pattern
+    first = _random_dense(N, COMPLEX, hermitian=hermitian, seed=11)
+    second = _random_dense(N, COMPLEX, hermitian=hermitian, seed=12)
+    second[first == 0] = 0
+    second[(first != 0) & (second == 0)] = 0.5  # the same pattern
+    t = torch.as_tensor(first).to_sparse_csr()
+    op = sparse.PatternOperator(t.crow_indices(), t.col_indices(), t.values(), hermitian=hermitian,
+                                identity=0.5, scale=-2.0)
+    values = torch.as_tensor(second).to_sparse_csr().values().clone()
+    new = op.with_values(values.real.contiguous(), values.imag.contiguous())
+    x = torch.randn(N, 3, dtype=COMPLEX, generator=torch.Generator().manual_seed(0), requires_grad=True)
+    want = 0.5 * x.detach().numpy() - 2.0 * np.einsum("uv,vf->uf", second, x.detach().numpy())
+    np.testing.assert_allclose(new.matmul(x).detach().numpy(), want, rtol=1e-12, atol=1e-12)
+    assert gradcheck(lambda a: new.matmul(a), (x,))
+    with pytest.raises(GraphInputError, match="values must be 1-D with one entry per column index"):
+        op.with_values(values[:-1])

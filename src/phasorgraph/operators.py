@@ -268,6 +268,106 @@ def _magnetic_values(st, magnitude: torch.Tensor, q: float, phase: str, dtype: t
     return torch.complex(re, im)
 
 
+def normalized_magnetic_values(graph: DirectedGraph, charge: float, *, phase: str = "difference",
+                               dtype: torch.dtype = torch.float32) -> tuple:
+    r"""The non-zeros of :math:`D^{-1/2} H(q) D^{-1/2}` on the structure's pattern, as ``(re, im)``.
+
+    The values of :func:`magnetic_laplacian` (normalized) without the identity and the sign:
+    :math:`L(q) - I = -D^{-1/2} H(q) D^{-1/2}`, so
+    ``PatternOperator(st.crow, st.cols, re, im, hermitian=True, scale=-1.0)`` with
+    ``st = graph.structure`` is :math:`L(q) - I` (self-loops included, no CSR assembly). Same
+    checks, same phase-wrap warning and the same arithmetic (:func:`magnetic_phasors`) as the
+    operator.
+
+    Args:
+        graph: a DirectedGraph with non-negative weights.
+        charge: q in [0, 0.5].
+        phase: "difference" (default), "sign" or "relative".
+        dtype: torch.float32 (default) or torch.float64, the precision of the two arrays.
+
+    Returns:
+        ``(re, im)``, two (nnz,) real tensors in the order of ``graph.structure.cols``.
+
+    Example:
+        >>> g = DirectedGraph.from_edges([[0], [1]])
+        >>> re, im = normalized_magnetic_values(g, 0.25)
+        >>> [round(v, 6) for v in im.tolist()]
+        [1.0, -1.0]
+    """
+    graph = check_graph(graph, "normalized_magnetic_values")
+    q = _check_charge(charge)
+    phase = check_phase(phase)
+    dtype = _real_dtype(dtype)
+    warn_if_wrapped(graph, q, phase)
+    st = _structure(graph)
+    return magnetic_phasors(st.normalized.to(dtype), phase_base(st, phase), q)
+
+
+def _node_pairs(graph: DirectedGraph) -> tuple:
+    st = graph.structure
+    rows, cols = st.rows.numpy(), st.cols.numpy()
+    # the pattern is symmetric and sorted by (row, col): its upper entries (row <= col) come in
+    # pair order, and its lower entries (row > col) sorted by (col, row) are the mirrors of the
+    # strictly upper ones in that order
+    upper = rows <= cols
+    pair = np.empty(rows.size, dtype=np.int64)
+    pair[upper] = np.arange(int(upper.sum()))
+    strict = pair[upper][rows[upper] < cols[upper]]
+    lower = np.flatnonzero(~upper)
+    pair[lower[np.argsort(cols[lower] * np.int64(max(graph.num_nodes, 1)) + rows[lower], kind="stable")]] = strict
+    return torch.from_numpy(pair), int(upper.sum())
+
+
+def node_pairs(graph: DirectedGraph) -> tuple:
+    r"""The unordered node pair of every non-zero of ``graph.structure``: ``(pair, count)``.
+
+    ``pair`` (nnz,) int64 numbers the linked pairs :math:`\{u, v\}` (a self-loop is a pair of
+    its own) 0 .. count - 1 in increasing :math:`(\min(u, v), \max(u, v))`, the order of
+    ``numpy.unique`` over ``min * N + max`` of the edges; a non-zero (u, v) and its mirror
+    (v, u) share their number. Kept with the graph.
+
+    Example:
+        >>> g = DirectedGraph.from_edges([[0, 1, 2], [1, 0, 1]])
+        >>> pair, count = node_pairs(g)
+        >>> pair.tolist(), count
+        ([0, 0, 1, 1], 2)
+    """
+    return check_graph(graph, "node_pairs").cached(_node_pairs)
+
+
+def orientation_signs(graph: DirectedGraph, flip, *, dtype: torch.dtype = torch.float32) -> torch.Tensor:
+    r"""Per non-zero of ``graph.structure``, the sign of :math:`A - A^T` once the pairs in ``flip`` are reversed.
+
+    Reversing the pair :math:`\{u, v\}` (an edge u -> v of weight a and v -> u of weight b
+    become v -> u of weight a and u -> v of weight b) keeps :math:`A_s`, hence the pattern and
+    the degrees, and negates :math:`A - A^T` on (u, v) and (v, u). Every phase base
+    (:func:`phase_base`: difference, sign and relative) is odd in :math:`A - A^T`, so the
+    reoriented graph has :math:`\Theta' = s\,\Theta` and
+    :math:`H'(q) = A_s (\cos\Theta + i\, s \sin\Theta)`: the values of
+    :func:`normalized_magnetic_values` with the imaginary part multiplied by s. No new graph,
+    validation, sort or trigonometry.
+
+    Args:
+        graph: a DirectedGraph with non-negative weights.
+        flip: (count,) booleans, one per pair of :func:`node_pairs` (True: reversed).
+        dtype: float dtype of the result (default torch.float32).
+
+    Returns:
+        (nnz,) tensor of +1 and -1.
+
+    Example:
+        >>> g = DirectedGraph.from_edges([[0, 1], [1, 2]])
+        >>> orientation_signs(g, [True, False]).tolist()
+        [-1.0, -1.0, 1.0, 1.0]
+    """
+    pair, count = node_pairs(graph)
+    f = torch.as_tensor(np.asarray(flip))
+    if f.dtype != torch.bool or f.shape != (count,):
+        raise GraphInputError(f"flip must be {count} booleans, one per linked node pair of the graph; got "
+                              f"dtype {f.dtype}, shape {tuple(f.shape)}")
+    return (1.0 - 2.0 * f.to(dtype)).index_select(0, pair)
+
+
 # ---------------------------------------------------------------------- real operators
 def combinatorial_laplacian(graph: DirectedGraph, *, dtype: Optional[torch.dtype] = None) -> SparseOperator:
     r"""Combinatorial Laplacian of the symmetrized graph, :math:`L = D - A_s`.

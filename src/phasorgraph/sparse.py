@@ -542,6 +542,28 @@ class PatternOperator:
         return _pattern_product(self, x, z, _check_scalar("alpha", alpha), _check_scalar("shift", shift),
                                 _check_scalar("beta", beta))
 
+    def with_values(self, values: Tensor, values_im: Optional[Tensor] = None) -> "PatternOperator":
+        """The same pattern, ``hermitian``, ``identity`` and ``scale`` with other values.
+
+        The pattern is not validated again and a transposed pattern is reused, so many value
+        sets on one pattern (one per charge, say) cost only their values. The caller vouches
+        that ``hermitian`` still holds for the new values.
+
+        Args:
+            values, values_im: as for the constructor, one entry per non-zero.
+
+        Example:
+            >>> import torch
+            >>> op = PatternOperator(torch.tensor([0, 1, 1]), torch.tensor([1]), torch.tensor([2.0]), hermitian=False)
+            >>> op.with_values(torch.tensor([3.0])).matmul(torch.ones(2, 1)).tolist()
+            [[3.0], [0.0]]
+        """
+        vre, vim = _check_values(values, values_im, self._col.numel())
+        if vre.device != self._crow.device:
+            raise GraphInputError(f"values are on {vre.device} but the pattern is on {self._crow.device}; move one of them")
+        return PatternOperator(self._crow, self._col, vre, vim, hermitian=self.hermitian, identity=self.identity,
+                               scale=self.scale, _checked=True, _transpose=(self._t_crow, self._t_col, self._t_perm))
+
 
 def _check_values(values, values_im, nnz: int) -> tuple:
     """Values as (re, im-or-None) real arrays of one precision, one entry per column index."""

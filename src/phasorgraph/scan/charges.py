@@ -9,6 +9,8 @@ orientations are random (the undirected structure and the weights kept).
 Everything here is linear algebra on (labelled rows) x (features) matrices: the features
 cost ``order`` sparse products per charge, and each model is solved in closed form (ridge) or
 by a few bound-Hessian Newton steps (multinomial logistic), batched over every fold and charge.
+A permuted copy is the graph's own magnetic values with the imaginary parts' signs flipped per
+node pair (no new graph); see the Notes of :func:`scan_charges`.
 """
 
 from __future__ import annotations
@@ -17,16 +19,16 @@ import math
 import numbers
 import sys
 import time
-import warnings
 from dataclasses import dataclass
 from typing import Any, Optional, Sequence
 
 import numpy as np
 import torch
 
-from ..errors import GraphInputError, PhaseWrapWarning
+from ..errors import GraphInputError
 from ..graph import DirectedGraph
-from ..operators import magnetic_laplacian
+from ..operators import node_pairs, normalized_magnetic_values, orientation_signs
+from ..sparse import PatternOperator
 
 __all__ = ["scan_charges", "ChargeScan", "ChargeRow", "magnetic_chebyshev_terms", "randomize_orientation",
            "DEFAULT_CHARGES"]
@@ -74,28 +76,113 @@ def magnetic_chebyshev_terms(graph: DirectedGraph, x: Any, charge: float, order:
     if real is None:
         raise GraphInputError(f"dtype must be torch.complex64 or torch.complex128; got {dtype}")
     xt = _features(x, graph.num_nodes).to(real)
-    return _terms(graph, xt, float(charge), order, phase, dtype)
+    return _ChebyshevFeatures(graph, xt, order, phase, dtype=dtype).terms(charge)
 
 
-def _terms(graph, x, q, order, phase, dtype):
-    op = magnetic_laplacian(graph, q, normalized=True, phase=phase, dtype=dtype)
-    n, f = x.shape
-    out = torch.empty((n, order + 1, f), dtype=dtype)
-    out[:, 0] = x
-    if order == 0 or n == 0:
+#: a Chebyshev term is computed on the rows it is needed at only when these hold at most this
+#: share of the non-zeros (a restricted term keeps its own values per charge; near all rows the
+#: saving is not worth that memory)
+_RESTRICT = 0.8
+
+
+class _ChebyshevFeatures:
+    r"""The terms :math:`T_k(L(q) - I)\,X` of one graph at chosen nodes, for any charge and orientation.
+
+    :math:`L(q) - I = -D^{-1/2} H(q) D^{-1/2}` is a :class:`~phasorgraph.sparse.PatternOperator`
+    on the graph's structure, its values (:func:`~phasorgraph.operators.normalized_magnetic_values`)
+    computed once per charge. A copy of the graph with reversed node pairs has the same pattern,
+    degrees and real parts, and its imaginary parts times the signs of
+    :func:`~phasorgraph.operators.orientation_signs` (:meth:`orientation`): a permuted copy
+    costs its products and one multiplication per non-zero, no graph, no validation, no sort,
+    no trigonometry.
+
+    Only the rows the requested nodes depend on are computed: :math:`T_K` at the nodes,
+    :math:`T_{k-1}` also at their neighbours, and so on, while a term's rows hold at most
+    ``_RESTRICT`` of the non-zeros (below that the term is computed whole). The other rows of a
+    restricted term hold values that are never read.
+    """
+
+    def __init__(self, graph: DirectedGraph, x: torch.Tensor, order: int, phase: str, nodes=None,
+                 dtype: torch.dtype = torch.complex64):
+        self.graph, self.order, self.phase, self.dtype = graph, order, phase, dtype
+        self.real = torch.float32 if dtype == torch.complex64 else torch.float64
+        st = graph.structure
+        self.x = x.to(self.real).contiguous()
+        self.nodes = None if nodes is None else torch.as_tensor(nodes, dtype=torch.int64)
+        nnz = st.cols.numel()
+        blank = torch.zeros(nnz, dtype=self.real)
+        full = PatternOperator(st.crow, st.cols, blank, blank, hermitian=True, scale=-1.0)  # validated once
+        # per k: (operator whose values get replaced, non-zeros it holds or None for all of them)
+        self.ops = [(full, None)] * (order + 1)
+        if self.nodes is not None and nnz:
+            n = graph.num_nodes
+            need = torch.zeros(n, dtype=torch.bool)
+            need[self.nodes] = True
+            for k in range(order, 0, -1):
+                nz = torch.nonzero(need[st.rows]).squeeze(1)
+                if nz.numel() > _RESTRICT * nnz:
+                    break  # lower terms need at least these rows
+                crow = torch.zeros(n + 1, dtype=torch.int64)
+                torch.cumsum(torch.bincount(st.rows[nz], minlength=n), 0, out=crow[1:])
+                cols = st.cols[nz]
+                part = torch.zeros(nz.numel(), dtype=self.real)
+                # rows outside the needed ones are empty: not Hermitian (only the backward, never run, reads this)
+                self.ops[k] = (PatternOperator(crow, cols, part, part, hermitian=False, scale=-1.0), nz)
+                need = need.clone()
+                need[cols] = True  # T_(k-1) is read at the neighbours
+        self._values = {}
+        self._real_t1 = {}
+
+    def values(self, q) -> list:
+        """Per k, (re, im) of :math:`D^{-1/2} H(q) D^{-1/2}` on that term's non-zeros (im None at q = 0)."""
+        hit = self._values.get(q) if isinstance(q, float) else None
+        if hit is None:
+            re, im = normalized_magnetic_values(self.graph, q, phase=self.phase, dtype=self.real)  # checks q
+            im = None if float(q) == 0 else im  # q = 0: real values, real products
+            parts = {}
+            hit = []
+            for _, nz in self.ops:
+                key = None if nz is None else id(nz)
+                if key not in parts:
+                    parts[key] = (re, im) if nz is None else (re[nz], None if im is None else im[nz])
+                hit.append(parts[key])
+            self._values[float(q)] = hit
+        return hit
+
+    def orientation(self, signs: torch.Tensor) -> list:
+        """Per k, the signs of :func:`~phasorgraph.operators.orientation_signs` on that term's non-zeros."""
+        return [signs if nz is None else signs[nz] for _, nz in self.ops]
+
+    def terms(self, q: float, orientation: Optional[list] = None) -> torch.Tensor:
+        """(nodes, K + 1, F) complex terms at charge q, of the graph reoriented by ``orientation`` if given."""
+        values = self.values(q)
+        q = float(q)
+        x, nodes = self.x, self.nodes
+        rows = x.shape[0] if nodes is None else nodes.numel()
+        out = torch.empty((rows, self.order + 1, x.shape[1]), dtype=self.dtype)
+        out[:, 0] = x if nodes is None else x[nodes]
+        if self.order == 0 or x.shape[0] == 0:
+            return out
+        # T1 = (L - I) X for real X: its real part -Re(N H) X is the same for every orientation
+        # (kept per charge), its imaginary part -Im(N H) X one real product of the copy's values
+        re, im = values[1]
+        if q not in self._real_t1:
+            self._real_t1[q] = self.ops[1][0].with_values(re).matmul(x)
+        prev, cur = x, self._real_t1[q]
+        if im is not None:
+            cur = torch.complex(cur, self.ops[1][0].with_values(_oriented(im, orientation, 1)).matmul(x))
+        out[:, 1] = cur if nodes is None else cur[nodes]
+        for k in range(2, self.order + 1):
+            # T_k = 2 (L - I) T_(k-1) - T_(k-2), one fused pass
+            re, im = values[k]
+            op = self.ops[k][0].with_values(re, None if im is None else _oriented(im, orientation, k))
+            prev, cur = cur, op.matmul_add(cur, prev, alpha=2.0, beta=-1.0)
+            out[:, k] = cur if nodes is None else cur[nodes]
         return out
-    prev = x.to(dtype)
-    cur = op @ prev
-    cur -= prev  # (L - I) x
-    out[:, 1] = cur
-    for k in range(2, order + 1):
-        nxt = op @ cur
-        nxt -= cur
-        nxt *= 2
-        nxt -= prev
-        out[:, k] = nxt
-        prev, cur = cur, nxt
-    return out
+
+
+def _oriented(im: torch.Tensor, orientation: Optional[list], k: int) -> torch.Tensor:
+    return im if orientation is None else im * orientation[k]
 
 
 def _scaled_columns(z: np.ndarray) -> np.ndarray:
@@ -104,23 +191,20 @@ def _scaled_columns(z: np.ndarray) -> np.ndarray:
     A complex column is divided by the root mean square of its centered modulus, so its real
     and imaginary parts keep their relative size: at a small charge the imaginary parts stay
     small, as a trained filter sees them, instead of being blown up to unit variance (per-part
-    standardization would make q = 0.001 and q = 0.25 look alike to a linear model).
+    standardization would make q = 0.001 and q = 0.25 look alike to a linear model). Columns
+    of (numerically) zero spread become 0.
     """
     z = z - z.mean(axis=0)
-    scale = np.sqrt(np.mean(np.abs(z) ** 2, axis=0))
-    keep = scale > 1e-12
-    z[:, keep] /= scale[keep]
-    z[:, ~keep] = 0.0
+    scale = np.sqrt(np.mean(z.real ** 2 + z.imag ** 2, axis=0))
+    z *= np.divide(1.0, scale, out=np.zeros_like(scale), where=scale > 1e-12)
     return np.concatenate([z.real, z.imag], axis=1)
 
 
 def _standardized_columns(z: np.ndarray) -> np.ndarray:
     """Real columns to mean 0 and standard deviation 1 (constant columns to 0)."""
     z = z - z.mean(axis=0)
-    std = z.std(axis=0)
-    keep = std > 1e-12
-    z[:, keep] /= std[keep]
-    z[:, ~keep] = 0.0
+    std = np.sqrt(np.mean(z * z, axis=0))
+    z *= np.divide(1.0, std, out=np.zeros_like(std), where=std > 1e-12)
     return z
 
 
@@ -157,75 +241,149 @@ def _logistic_weights(Z: torch.Tensor, Y: torch.Tensor, weight: torch.Tensor, gr
     matrix per fit; each step multiplies the gradient by its inverse. The steps decrease the
     objective monotonically (a majorize-minimize scheme); they stop once no weight moves by 1e-6.
     ``weight`` (J, n) holds 1 / n_train on the training rows of fold j, 0 elsewhere; ``gram``
-    (Q, J, D, D) is :math:`Z_q^T \mathrm{diag}(w_j) Z_q`.
+    (Q, J, D, D) is :math:`Z_q^T \mathrm{diag}(w_j) Z_q` (float64: the bound is inverted there,
+    by Cholesky). The steps run in the precision of ``Z``; the weights of all folds sit side by
+    side, (D, J C) per charge, so each step is two batched products over the rows.
     """
     Q, n, D = Z.shape
     J = weight.shape[0]
     classes = Y.shape[1]
-    bound_inv = torch.linalg.inv(0.5 * gram + torch.diag(lam))  # (Q, J, D, D)
-    W = torch.zeros(Q, J, D, classes, dtype=torch.float64)
-    w = weight.T.unsqueeze(-1)  # (n, J, 1)
+    free = classes - 1
+    bound = 0.5 * gram.to(torch.float64) + torch.diag(lam.to(torch.float64))
+    factor, info = torch.linalg.cholesky_ex(bound)
+    bound_inv = torch.cholesky_inverse(factor) if not bool(info.any()) else torch.linalg.inv(bound)
+    bound_inv = bound_inv.to(Z.dtype)  # (Q, J, D, D)
+    # The weights of every fold side by side, transposed and class-major: (Q, (C - 1) J, D), so
+    # the logits come out as (Q, C, J, n) and softmax and the elementwise steps run along the
+    # rows. Each fit's (D, C) weights have rows summing to 0 (the steps start at 0 and every
+    # gradient row sums to 0, since softmax and one-hot rows both sum to 1), so the last class is
+    # minus the sum of the others and both products run on C - 1 classes.
+    W = torch.zeros(Q, free * J, D, dtype=Z.dtype)
+    Zt = Z.transpose(1, 2)
+    Yt = Y.T.to(Z.dtype)[:, None, :]  # (C, 1, n)
+    w = weight.to(Z.dtype)  # (J, n)
+    lam_d = lam.to(Z.dtype)
+    inv_flat = bound_inv.reshape(Q * J, D, D)
     for _ in range(iterations):
-        logits = torch.bmm(Z, W.permute(0, 2, 1, 3).reshape(Q, D, J * classes)).reshape(Q, n, J, classes)
-        P = torch.exp(logits - logits.amax(-1, keepdim=True))
-        P /= P.sum(-1, keepdim=True)
-        R = (P - Y[:, None, :]) * w  # (Q, n, J, C)
-        grad = torch.bmm(Z.transpose(1, 2), R.reshape(Q, n, J * classes)).reshape(Q, D, J, classes)
-        grad = grad.permute(0, 2, 1, 3) + lam[:, None] * W
-        grad = grad - grad.mean(-1, keepdim=True)
-        step = bound_inv @ grad
-        W = W - step
-        if float(step.abs().max()) < 1e-6:
+        R = torch.softmax(_class_logits(W, Zt, free, J), dim=1)
+        R -= Yt
+        R *= w  # (Q, C, J, n)
+        grad = torch.bmm(R[:, :free].reshape(Q, free * J, n), Z) + lam_d * W  # (a view of R: no copy)
+        # the step of fold j is its gradient times the inverse bound (symmetric) of fold j
+        step = torch.bmm(grad.view(Q, free, J, D).transpose(1, 2).reshape(Q * J, free, D), inv_flat)
+        step = step.view(Q, J, free, D).transpose(1, 2).reshape(Q, free * J, D)
+        W -= step
+        if max(float(step.abs().max()), float(step.view(Q, free, J, D).sum(1).abs().max())) < 1e-6:
             break
-    return W
+    W = W.view(Q, free, J, D)
+    return torch.cat([W, -W.sum(1, keepdim=True)], dim=1).permute(0, 2, 3, 1)  # (Q, J, D, C)
 
 
-def _fit_scores(Z: np.ndarray, target: np.ndarray, test: np.ndarray, task: str, penalty: float,
-                iterations: int) -> np.ndarray:
-    """Scores (Q, J) of one model per charge q (Z[q], (n, D)) and per fold j (test rows test[j])."""
-    Zt = torch.from_numpy(Z)  # (Q, n, D) float64
-    Q, n, D = Zt.shape
-    test_t = torch.from_numpy(test)  # (J, n) bool
-    train = (~test_t).to(torch.float64)
-    J = train.shape[0]
-    n_train = train.sum(1)  # (J,)
-    lam = torch.full((D,), float(penalty), dtype=torch.float64)
-    lam[0] = 0.0  # the intercept is not penalized
-    # Gram matrices of the training rows, (Q, J, D, D): one weighted product per fold
-    total = torch.bmm(Zt.transpose(1, 2), Zt)  # (Q, D, D)
-    gram = torch.empty(Q, J, D, D, dtype=torch.float64)
-    for j in range(J):  # folds, not rows: the Gram of the held-out rows, subtracted from the total
-        Zj = Zt[:, test_t[j]]
-        gram[:, j] = (total - torch.bmm(Zj.transpose(1, 2), Zj)) / n_train[j]
-    if task == "regression":
-        y = torch.from_numpy(target).to(torch.float64)
-        rhs = torch.einsum("qnd,jn->qjd", Zt, train * y / n_train[:, None])
-        w = torch.linalg.solve(gram + torch.diag(lam), rhs.unsqueeze(-1)).squeeze(-1)  # (Q, J, D)
-        pred = torch.einsum("qnd,qjd->qjn", Zt, w)
-        scores = torch.empty(Q, J, dtype=torch.float64)
+def _first_argmax(logits: torch.Tensor) -> torch.Tensor:
+    """``logits.argmax(1)`` (the first class of highest logit) for a few classes, one pass per class."""
+    best = logits[:, 0].clone()
+    index = torch.zeros(best.shape, dtype=torch.int64)
+    for c in range(1, logits.shape[1]):
+        better = logits[:, c] > best
+        best = torch.where(better, logits[:, c], best)
+        index.masked_fill_(better, c)
+    return index
+
+
+def _class_logits(W: torch.Tensor, Zt: torch.Tensor, free: int, J: int) -> torch.Tensor:
+    """(Q, C, J, n) logits from transposed class-major weights (Q, free J, D) of C - 1 = free classes
+    (the last class: minus their sum) and the transposed design (Q, D, n)."""
+    part = torch.bmm(W, Zt).view(Zt.shape[0], free, J, Zt.shape[2])
+    return torch.cat([part, -part.sum(1, keepdim=True)], dim=1)
+
+
+class _FoldModels:
+    """One regularized linear model per charge and fold, scored on the fold's held-out rows.
+
+    Everything that does not depend on the features (the folds, their row weights and held-out
+    rows, one-hot targets, penalties) is prepared once and reused for the observed graph and
+    every permuted copy, so observed and null scores come from the same fits. Ridge models are
+    solved in float64; the logistic steps run in float32 (the design is standardized, the
+    Gram matrices and the bound are float64), at half the cost of float64.
+    """
+
+    def __init__(self, target: np.ndarray, test: np.ndarray, task: str, penalty: float, iterations: int):
+        self.task, self.target, self.test_np = task, target, test
+        self.penalty, self.iterations = float(penalty), iterations
+        self.test = torch.from_numpy(test)  # (J, n) bool
+        train = (~self.test).to(torch.float64)
+        self.n_train = train.sum(1)  # (J,)
+        self.train = train
+        self.weight = train / self.n_train[:, None]
+        self.held = [torch.nonzero(self.test[j]).squeeze(1) for j in range(test.shape[0])]
+        times = test.sum(0)  # how often each row is held out
+        self.repeats = int(times[0]) if times.size and np.all(times == times[0]) and times[0] > 0 else 0
+        if task == "regression":
+            self.y = torch.from_numpy(target).to(torch.float64)
+        else:
+            self.target_t = torch.from_numpy(target)
+            self.Y = torch.nn.functional.one_hot(self.target_t, int(target.max()) + 1).to(torch.float64)
+
+    def _grams(self, Zt: torch.Tensor) -> torch.Tensor:
+        """(Q, J, D, D) Gram matrices of each fold's training rows, weighted 1 / n_train.
+
+        Folds, not rows: each fold's training Gram is the total minus its held-out Gram, and when
+        every row is held out equally often (r times: the folds of each repeat partition the
+        rows) the total is the sum of the held-out Grams divided by r, so the rows are read once.
+        """
+        Q, n, D = Zt.shape
+        held = torch.empty(Q, len(self.held), D, D, dtype=torch.float64)
+        for j, rows in enumerate(self.held):
+            Zj = Zt.index_select(1, rows)
+            held[:, j] = torch.bmm(Zj.transpose(1, 2), Zj)
+        if self.repeats:
+            total = held.sum(1) / self.repeats
+        else:
+            total = torch.bmm(Zt.transpose(1, 2), Zt)
+        return (total[:, None] - held) / self.n_train[None, :, None, None]
+
+    def scores(self, Z: np.ndarray) -> np.ndarray:
+        """Scores (Q, J) of the model of charge q (design Z[q], (n, D)) on the held-out rows of fold j."""
+        used = np.flatnonzero(np.any(Z != 0, axis=(0, 1)))
+        if used.size < Z.shape[2]:
+            # columns that are 0 for every charge (the imaginary parts of T_0 = X, constant features)
+            # keep 0 weights in every fit and change no other weight (their Gram rows are 0 and
+            # the penalty alone bounds them): leaving them out changes no score
+            Z = Z[:, :, used]
+        Zt = torch.from_numpy(Z)  # (Q, n, D) float64, column 0 the intercept
+        Q, n, D = Zt.shape
+        J = len(self.held)
+        lam = torch.full((D,), self.penalty, dtype=torch.float64)
+        lam[0] = 0.0  # the intercept is not penalized
+        gram = self._grams(Zt)
+        if self.task == "regression":
+            y = self.y
+            rhs = torch.einsum("qnd,jn->qjd", Zt, self.train * y / self.n_train[:, None])
+            w = torch.linalg.solve(gram + torch.diag(lam), rhs.unsqueeze(-1)).squeeze(-1)  # (Q, J, D)
+            pred = torch.einsum("qnd,qjd->qjn", Zt, w)
+            scores = torch.empty(Q, J, dtype=torch.float64)
+            for j, rows in enumerate(self.held):
+                yt = y[rows]
+                sst = ((yt - yt.mean()) ** 2).sum()
+                sse = ((pred[:, j, rows] - yt) ** 2).sum(-1)
+                scores[:, j] = 1.0 - sse / sst.clamp_min(1e-300)
+            return scores.numpy()
+        Z32 = Zt.to(torch.float32)
+        classes = self.Y.shape[1]
+        W = _logistic_weights(Z32, self.Y, self.weight, gram, lam, self.iterations)  # (Q, J, D, C)
+        logits = torch.bmm(W.permute(0, 3, 1, 2).reshape(Q, classes * J, D), Z32.transpose(1, 2))
+        logits = logits.view(Q, classes, J, n)
+        if self.task == "classification":
+            correct = (_first_argmax(logits) == self.target_t).to(torch.float64)  # (Q, J, n)
+            hits = (correct * self.test).sum(-1)
+            return (hits / self.test.sum(1).to(torch.float64)).numpy()
+        margin = (logits[:, 1] - logits[:, 0]).to(torch.float64).numpy()  # (Q, J, n)
+        scores = np.empty((Q, J))
         for j in range(J):
-            rows = test_t[j]
-            yt = y[rows]
-            sst = ((yt - yt.mean()) ** 2).sum()
-            sse = ((pred[:, j, rows] - yt) ** 2).sum(-1)
-            scores[:, j] = 1.0 - sse / sst.clamp_min(1e-300)
-        return scores.numpy()
-    classes = int(target.max()) + 1
-    Y = torch.nn.functional.one_hot(torch.from_numpy(target), classes).to(torch.float64)  # (n, C)
-    W = _logistic_weights(Zt, Y, train / n_train[:, None], gram, lam, iterations)
-    Zflat = Zt
-    logits = torch.bmm(Zflat, W.permute(0, 2, 1, 3).reshape(Q, D, J * classes)).reshape(Q, n, J, classes)
-    scores = np.empty((Q, J))
-    if task == "classification":
-        correct = (logits.argmax(-1) == torch.from_numpy(target)[None, :, None]).to(torch.float64)  # (Q, n, J)
-        hits = torch.einsum("qnj,jn->qj", correct, test_t.to(torch.float64))
-        return (hits / test_t.sum(1).to(torch.float64)).numpy()
-    margin = (logits[..., 1] - logits[..., 0]).numpy()  # (Q, n, J)
-    for j in range(J):
-        rows = test[j]
-        for q in range(Q):
-            scores[q, j] = _auc(margin[q, rows, j], target[rows])
-    return scores
+            rows = self.test_np[j]
+            for q in range(Q):
+                scores[q, j] = _auc(margin[q, j, rows], self.target[rows])
+        return scores
 
 
 def _auc(scores: np.ndarray, labels: np.ndarray) -> float:
@@ -533,6 +691,11 @@ def _folds(rng, n: int, folds: int, repeats: int, strata: Optional[np.ndarray], 
     return masks
 
 
+def _pair_flips(rng: np.random.Generator, count: int) -> np.ndarray:
+    """Which of ``count`` node pairs (numbered as :func:`phasorgraph.operators.node_pairs` does) to reverse."""
+    return rng.random(count) < 0.5
+
+
 def randomize_orientation(graph: DirectedGraph, rng: np.random.Generator) -> DirectedGraph:
     """The graph with each linked node pair's orientation flipped with probability 1/2.
 
@@ -540,13 +703,16 @@ def randomize_orientation(graph: DirectedGraph, rng: np.random.Generator) -> Dir
     flipped, v -> u (a) and u -> v (b). So the symmetrized adjacency :math:`A_s` (the undirected
     structure and its weights) is unchanged and only which way each pair points is random;
     self-loops stay. Vectorized over the edges.
+
+    :func:`scan_charges` never builds these graphs: it draws the same flips from ``rng`` and
+    applies them to the graph's magnetic values (:func:`phasorgraph.operators.orientation_signs`);
+    the tests check that both give the same features.
     """
     s = graph.source.numpy()
     t = graph.target.numpy()
     lo, hi = np.minimum(s, t), np.maximum(s, t)
     _, pair = np.unique(lo * np.int64(max(graph.num_nodes, 1)) + hi, return_inverse=True)
-    flip = rng.random(int(pair.max()) + 1 if pair.size else 0) < 0.5
-    f = flip[pair]
+    f = _pair_flips(rng, int(pair.max()) + 1 if pair.size else 0)[pair]
     return DirectedGraph(torch.from_numpy(np.where(f, t, s)), torch.from_numpy(np.where(f, s, t)), graph.weight,
                          graph.num_nodes)
 
@@ -667,6 +833,18 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
         fold scores moved by at most 0.03 between 15 and 200 steps on the freight network of the
         tutorials); the ridge models take one solve per fold.
 
+        What keeps the permutation test cheap, with the null statistic computed exactly as the
+        observed one (same charges, folds, designs and fits): a permuted copy is never built as
+        a graph. Reversing node pairs keeps the pattern, the degrees and the real parts of the
+        magnetic values and flips the sign of their imaginary parts pair by pair
+        (:func:`phasorgraph.operators.orientation_signs`), so a copy costs one multiplication per
+        non-zero and its products; q = 0 is orientation-free and scored once. The real part of
+        the first term, :math:`\mathrm{Re}(L(q) - I) X`, is the same for every copy and kept per
+        charge. Terms are computed only on the rows the scored nodes depend on (the last term on
+        the scored nodes alone). Fold splits, weights and targets are prepared once; the
+        logistic steps run in float32 on C - 1 classes (the weights of each class sum to 0).
+        ``bench/scan.py`` measures each stage (bench/README.md).
+
     Example:
         >>> from phasorgraph.data import directed_block_model
         >>> g, y = directed_block_model([40, 40], 0.1, [[0.5, 0.9], [0.1, 0.5]], seed=0)
@@ -733,29 +911,39 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
         n_rows = pick.size
     test = _folds(rng, n_rows, folds, repeats, strata, groups)
     test_fraction = float(test.sum(1).mean()) / n_rows
-    design = _pair_design if task == "link" else _node_design
+    if task == "link":
+        nodes, where = np.unique(rows, return_inverse=True)  # the pairs' endpoints
+        where = where.reshape(rows.shape)
+        design = _pair_design
+    else:
+        nodes, where, design = rows, np.arange(rows.size), _node_design
+    # features are computed at the scored nodes only (and the rows they depend on); the models
+    # on the same folds for every charge, the observed graph and every permuted copy
+    features = _ChebyshevFeatures(graph, xt, order, phase, nodes=nodes)
     iterations = 15  # fold scores moved by <= 0.03 between 15 and 200 steps on the freight network (measured)
+    models = _FoldModels(target, test, task, float(penalty), iterations)
     bar = _Progress(progress, len(qs) + permutations * (len(qs) - 1), "charge scan")
 
-    def scores_on(g, which):
+    def scores_on(signs, which):
         Z = []
         for q in which:
-            Z.append(design(_terms(g, xt, q, order, phase, torch.complex64), rows))
+            Z.append(design(features.terms(q, signs), where))
             bar.step(f"q = {q:g}")
-        return _fit_scores(np.stack(Z), target, test, task, float(penalty), iterations)
+        return models.scores(np.stack(Z))
 
-    observed = scores_on(graph, qs)
+    observed = scores_on(None, qs)
     means = observed.mean(1)
     base = means[0]
     gain = float(np.max(means[1:]) - base)
     # the gain as ChargeScan measures it: the best charge's mean paired difference
     null = []
     exceed = 0
+    pair_count = node_pairs(graph)[1] if permutations else 0
     for _ in range(permutations):
-        permuted = randomize_orientation(graph, rng)
-        with warnings.catch_warnings():  # a phase-wrap warning was already given for the graph itself
-            warnings.simplefilter("ignore", PhaseWrapWarning)
-            g_null = float(np.max(scores_on(permuted, qs[1:]).mean(1)) - base)
+        # a randomly oriented copy: the flips randomize_orientation(graph, rng) would draw, applied
+        # to the magnetic values (q = 0 is orientation-free: its scores are the observed ones)
+        signs = features.orientation(orientation_signs(graph, _pair_flips(rng, pair_count)))
+        g_null = float(np.max(scores_on(signs, qs[1:]).mean(1)) - base)
         null.append(g_null)
         exceed += g_null >= gain - 1e-12
         if exceed >= 3:
