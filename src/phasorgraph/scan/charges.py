@@ -131,7 +131,6 @@ class _ChebyshevFeatures:
                 need = need.clone()
                 need[cols] = True  # T_(k-1) is read at the neighbours
         self._values = {}
-        self._real_t1 = {}
 
     def values(self, q) -> list:
         """Per k, (re, im) of :math:`D^{-1/2} H(q) D^{-1/2}` on that term's non-zeros (im None at q = 0)."""
@@ -156,33 +155,31 @@ class _ChebyshevFeatures:
     def terms(self, q: float, orientation: Optional[list] = None) -> torch.Tensor:
         """(nodes, K + 1, F) complex terms at charge q, of the graph reoriented by ``orientation`` if given."""
         values = self.values(q)
-        q = float(q)
         x, nodes = self.x, self.nodes
         rows = x.shape[0] if nodes is None else nodes.numel()
         out = torch.empty((rows, self.order + 1, x.shape[1]), dtype=self.dtype)
         out[:, 0] = x if nodes is None else x[nodes]
         if self.order == 0 or x.shape[0] == 0:
             return out
-        # T1 = (L - I) X for real X: its real part -Re(N H) X is the same for every orientation
-        # (kept per charge), its imaginary part -Im(N H) X one real product of the copy's values
-        re, im = values[1]
-        if q not in self._real_t1:
-            self._real_t1[q] = self.ops[1][0].with_values(re).matmul(x)
-        prev, cur = x, self._real_t1[q]
-        if im is not None:
-            cur = torch.complex(cur, self.ops[1][0].with_values(_oriented(im, orientation, 1)).matmul(x))
+        built = {}  # the whole-pattern operator serves every unrestricted term: built once
+
+        def operator(k: int) -> PatternOperator:
+            base, nz = self.ops[k]
+            key = -1 if nz is None else k
+            if key not in built:
+                re, im = values[k]
+                if im is not None and orientation is not None:
+                    im = im * orientation[k]
+                built[key] = base.with_values(re, im)
+            return built[key]
+
+        prev, cur = x, operator(1).matmul(x)  # T1 = (L - I) X, real X never cast to complex
         out[:, 1] = cur if nodes is None else cur[nodes]
         for k in range(2, self.order + 1):
             # T_k = 2 (L - I) T_(k-1) - T_(k-2), one fused pass
-            re, im = values[k]
-            op = self.ops[k][0].with_values(re, None if im is None else _oriented(im, orientation, k))
-            prev, cur = cur, op.matmul_add(cur, prev, alpha=2.0, beta=-1.0)
+            prev, cur = cur, operator(k).matmul_add(cur, prev, alpha=2.0, beta=-1.0)
             out[:, k] = cur if nodes is None else cur[nodes]
         return out
-
-
-def _oriented(im: torch.Tensor, orientation: Optional[list], k: int) -> torch.Tensor:
-    return im if orientation is None else im * orientation[k]
 
 
 def _scaled_columns(z: np.ndarray) -> np.ndarray:
@@ -303,8 +300,8 @@ class _FoldModels:
     Everything that does not depend on the features (the folds, their row weights and held-out
     rows, one-hot targets, penalties) is prepared once and reused for the observed graph and
     every permuted copy, so observed and null scores come from the same fits. Ridge models are
-    solved in float64; the logistic steps run in float32 (the design is standardized, the
-    Gram matrices and the bound are float64), at half the cost of float64.
+    solved in float64; the logistic fits run in float32 (the design is standardized; the bound
+    is inverted in float64), at half the cost of float64.
     """
 
     def __init__(self, target: np.ndarray, test: np.ndarray, task: str, penalty: float, iterations: int):
@@ -332,7 +329,7 @@ class _FoldModels:
         rows) the total is the sum of the held-out Grams divided by r, so the rows are read once.
         """
         Q, n, D = Zt.shape
-        held = torch.empty(Q, len(self.held), D, D, dtype=torch.float64)
+        held = torch.empty(Q, len(self.held), D, D, dtype=Zt.dtype)
         for j, rows in enumerate(self.held):
             Zj = Zt.index_select(1, rows)
             held[:, j] = torch.bmm(Zj.transpose(1, 2), Zj)
@@ -355,8 +352,8 @@ class _FoldModels:
         J = len(self.held)
         lam = torch.full((D,), self.penalty, dtype=torch.float64)
         lam[0] = 0.0  # the intercept is not penalized
-        gram = self._grams(Zt)
         if self.task == "regression":
+            gram = self._grams(Zt)
             y = self.y
             rhs = torch.einsum("qnd,jn->qjd", Zt, self.train * y / self.n_train[:, None])
             w = torch.linalg.solve(gram + torch.diag(lam), rhs.unsqueeze(-1)).squeeze(-1)  # (Q, J, D)
@@ -369,6 +366,7 @@ class _FoldModels:
                 scores[:, j] = 1.0 - sse / sst.clamp_min(1e-300)
             return scores.numpy()
         Z32 = Zt.to(torch.float32)
+        gram = self._grams(Z32).to(torch.float64)  # standardized columns: float32 sums are ample for the bound
         classes = self.Y.shape[1]
         W = _logistic_weights(Z32, self.Y, self.weight, gram, lam, self.iterations)  # (Q, J, D, C)
         logits = torch.bmm(W.permute(0, 3, 1, 2).reshape(Q, classes * J, D), Z32.transpose(1, 2))
@@ -838,10 +836,8 @@ def scan_charges(graph, x, y=None, *, charges: Optional[Sequence[float]] = None,
         a graph. Reversing node pairs keeps the pattern, the degrees and the real parts of the
         magnetic values and flips the sign of their imaginary parts pair by pair
         (:func:`phasorgraph.operators.orientation_signs`), so a copy costs one multiplication per
-        non-zero and its products; q = 0 is orientation-free and scored once. The real part of
-        the first term, :math:`\mathrm{Re}(L(q) - I) X`, is the same for every copy and kept per
-        charge. Terms are computed only on the rows the scored nodes depend on (the last term on
-        the scored nodes alone). Fold splits, weights and targets are prepared once; the
+        non-zero and its products; q = 0 is orientation-free and scored once. Terms are computed
+        only on the rows the scored nodes depend on (the last term on the scored nodes alone). Fold splits, weights and targets are prepared once; the
         logistic steps run in float32 on C - 1 classes (the weights of each class sum to 0).
         ``bench/scan.py`` measures each stage (bench/README.md).
 
