@@ -19,7 +19,8 @@ restricted Chebyshev terms), the magnetic values of each charge (once per charge
 orientation signs of each permuted copy, the Chebyshev products, the standardized designs and
 the model fits, split between the observed graph and the permuted copies.
 
-Usage: .venv/bin/python bench/scan.py [--quick] [--threads T]
+Usage: .venv/bin/python bench/scan.py [--quick] [--threads T]; writes bench/results/scan.json
+(scan_<T>thread.json for other thread counts; ``--quick``: N = 1e4, E = 1e5, *_quick.json).
 """
 
 from __future__ import annotations
@@ -184,7 +185,7 @@ def main(argv=None) -> None:
     print_table(rows, ["case", "wall s", "cpu s", "x train step"])
     print(f"verdict: {result.verdict}")
     print(f"load average {load_before:.2f} before, {load_after:.2f} after")
-    write_results("scan", {"nodes": n, "edges": graph.num_edges, "labelled": int((y >= 0).sum()), "threads": args.threads,
+    write_results("scan" if args.threads == 2 else f"scan_{args.threads}thread", {"nodes": n, "edges": graph.num_edges, "labelled": int((y >= 0).sum()), "threads": args.threads,
                            "load_average": [load_before, load_after], "rows": rows, "verdict": result.verdict,
                            "interval_only_verdict": r0.verdict, "permutations": copies,
                            "machine": machine_info()}, argv=sys.argv)

@@ -131,6 +131,12 @@ class _ChebyshevFeatures:
                 need = need.clone()
                 need[cols] = True  # T_(k-1) is read at the neighbours
         self._values = {}
+        self._xc = None
+
+    def _complex_x(self) -> torch.Tensor:
+        if self._xc is None:
+            self._xc = self.x.to(self.dtype)
+        return self._xc
 
     def values(self, q) -> list:
         """Per k, (re, im) of :math:`D^{-1/2} H(q) D^{-1/2}` on that term's non-zeros (im None at q = 0)."""
@@ -173,7 +179,8 @@ class _ChebyshevFeatures:
                 built[key] = base.with_values(re, im)
             return built[key]
 
-        prev, cur = x, operator(1).matmul(x)  # T1 = (L - I) X, real X never cast to complex
+        cur = operator(1).matmul(x)  # T1 = (L - I) X, real X never cast to complex
+        prev = x if not cur.is_complex() else self._complex_x()  # (as the z of a complex product)
         out[:, 1] = cur if nodes is None else cur[nodes]
         for k in range(2, self.order + 1):
             # T_k = 2 (L - I) T_(k-1) - T_(k-2), one fused pass
