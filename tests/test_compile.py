@@ -178,6 +178,26 @@ def test_grouped_readout_breaks_once_to_check_graph_index_and_matches_eager():
     torch.testing.assert_close(xc.grad, xe.grad, rtol=1e-12, atol=1e-12)
 
 
+def _eager_run(model, x, graph, ops):
+    """The eager reference: outputs, the input (with its gradient) and the parameters' gradients."""
+    xe = x.clone().requires_grad_()
+    eager = model(xe, graph, *ops)
+    _loss(eager).backward()
+    grads = {n: p.grad.clone() for n, p in model.named_parameters()}
+    model.zero_grad()
+    return eager, xe, grads
+
+
+def _assert_matches_eager(model, outs, xc, eager, xe, grads):
+    """Compiled outputs and every gradient equal the eager ones to 1e-10 (float64)."""
+    for a, b in zip(outs, eager):
+        torch.testing.assert_close(a, b.detach(), rtol=1e-10, atol=1e-10)
+    _loss(outs).backward()
+    torch.testing.assert_close(xc.grad, xe.grad, rtol=1e-10, atol=1e-10)
+    for n, p in model.named_parameters():
+        torch.testing.assert_close(p.grad, grads[n], rtol=1e-10, atol=1e-10, msg=n)
+
+
 @pytest.mark.parametrize("backend", [
     "aot_eager",
     pytest.param("inductor", marks=pytest.mark.skipif(shutil.which("g++") is None and shutil.which("c++") is None,
@@ -188,22 +208,13 @@ def test_compiled_model_matches_eager_forward_and_backward(backend):
     # inductor (the default backend) on the magnetic layers only, to keep the suite's time
     g, x, ops = _inputs()
     model = _AllLayers() if backend == "aot_eager" else _MagneticLayers()
-    xe = x.clone().requires_grad_()
-    eager = model(xe, g, *ops)
-    _loss(eager).backward()
-    grads = {n: p.grad.clone() for n, p in model.named_parameters()}
-    model.zero_grad()
+    eager, xe, grads = _eager_run(model, x, g, ops)
     dynamo.reset()
     g.clear_cache()  # the first compiled call builds the operators itself (one eager break)
     compiled = torch.compile(model, backend=backend)
     xc = x.clone().requires_grad_()
     outs = compiled(xc, g, *ops)
-    for a, b in zip(outs, eager):
-        torch.testing.assert_close(a, b.detach(), rtol=1e-10, atol=1e-10)
-    _loss(outs).backward()
-    torch.testing.assert_close(xc.grad, xe.grad, rtol=1e-10, atol=1e-10)
-    for n, p in model.named_parameters():
-        torch.testing.assert_close(p.grad, grads[n], rtol=1e-10, atol=1e-10, msg=n)
+    _assert_matches_eager(model, outs, xc, eager, xe, grads)
     # a second call reuses the compiled code and the cached operators (x requiring grad as in
     # the first call: no recompilation)
     outs2 = compiled(x.clone().requires_grad_(), g, *ops)
@@ -224,20 +235,11 @@ def test_compiled_model_on_a_graph_shard_matches_eager_forward_and_backward():
     # shard's operators exist (built by the eager run), so the model is one graph: no break
     shard, x, ops = _shard_inputs()
     model = _ShardLayers()
-    xe = x.clone().requires_grad_()
-    eager = model(xe, shard, *ops)
-    _loss(eager).backward()
-    grads = {n: p.grad.clone() for n, p in model.named_parameters()}
-    model.zero_grad()
+    eager, xe, grads = _eager_run(model, x, shard, ops)
     dynamo.reset()
     counter = CompileCounterWithBackend("aot_eager")
     compiled = torch.compile(model, backend=counter)
     xc = x.clone().requires_grad_()
     outs = compiled(xc, shard, *ops)
     assert counter.frame_count == 1
-    for a, b in zip(outs, eager):
-        torch.testing.assert_close(a, b.detach(), rtol=1e-10, atol=1e-10)
-    _loss(outs).backward()
-    torch.testing.assert_close(xc.grad, xe.grad, rtol=1e-10, atol=1e-10)
-    for n, p in model.named_parameters():
-        torch.testing.assert_close(p.grad, grads[n], rtol=1e-10, atol=1e-10, msg=n)
+    _assert_matches_eager(model, outs, xc, eager, xe, grads)
